@@ -1,0 +1,99 @@
+"""The JSON API under /api/v1/ (DESIGN.md §4): authentication, one error format, the routers.
+
+Errors always answer ``{"detail": "<what went wrong>", "errors": [{"field", "message"}]}``;
+``errors`` is present when specific fields are at fault.
+"""
+
+from __future__ import annotations
+
+from django.core.exceptions import ObjectDoesNotExist
+from django.core.exceptions import ValidationError as DjangoValidationError
+from django.db import DatabaseError, IntegrityError
+from ninja import NinjaAPI
+from ninja.errors import AuthenticationError, HttpError
+from ninja.errors import ValidationError as NinjaValidationError
+
+from labbook.accounts.auth import BearerToken, LabSession
+from labbook.accounts.permissions import PermissionDenied
+
+api = NinjaAPI(
+    title="labbook API",
+    version="1",
+    description="The lab record of UHV low-temperature scanning-probe microscopes. "
+    "Send `Authorization: Bearer <token>` (see `manage.py mint_token`) or use the browser session.",
+    auth=[BearerToken(), LabSession()],
+    urls_namespace="api",
+    docs_url="/docs",
+)
+
+
+def _error(request, status: int, detail: str, errors: list[dict] | None = None):
+    body: dict = {"detail": detail}
+    if errors:
+        body["errors"] = errors
+    return api.create_response(request, body, status=status)
+
+
+@api.exception_handler(NinjaValidationError)
+def _invalid_input(request, exc: NinjaValidationError):
+    errors = []
+    for item in exc.errors:
+        location = [str(part) for part in item.get("loc", ()) if part not in ("body", "payload")]
+        errors.append({"field": ".".join(location), "message": item.get("msg", "invalid")})
+    return _error(request, 422, "the request has invalid fields", errors)
+
+
+@api.exception_handler(DjangoValidationError)
+def _invalid_record(request, exc: DjangoValidationError):
+    if hasattr(exc, "error_dict"):
+        errors = [
+            {"field": field, "message": " ".join(m for e in errs for m in e.messages)}
+            for field, errs in exc.error_dict.items()
+        ]
+    else:
+        errors = [{"field": "", "message": m} for m in exc.messages]
+    return _error(request, 422, "the record is not valid", errors)
+
+
+@api.exception_handler(AuthenticationError)
+def _unauthenticated(request, exc):
+    return _error(request, 401, "authentication required: a bearer token or a login session")
+
+
+@api.exception_handler(PermissionDenied)
+def _forbidden(request, exc: PermissionDenied):
+    return _error(request, 403, str(exc))
+
+
+@api.exception_handler(HttpError)
+def _http_error(request, exc: HttpError):
+    return _error(request, exc.status_code, str(exc))
+
+
+@api.exception_handler(ObjectDoesNotExist)
+def _not_found(request, exc):
+    return _error(request, 404, str(exc) or "not found")
+
+
+@api.exception_handler(IntegrityError)
+def _conflict(request, exc):
+    return _error(request, 409, "this conflicts with an existing record")
+
+
+@api.exception_handler(DatabaseError)
+def _database_unavailable(request, exc):
+    # A restarting database must give a clear, retryable answer, never a half-written record.
+    response = _error(request, 503, "the database is unavailable; retry shortly")
+    response["Retry-After"] = "5"
+    return response
+
+
+def _mount_routers() -> None:
+    from labbook.accounts.api import router as accounts_router
+    from labbook.instruments.api import router as instruments_router
+
+    api.add_router("/", instruments_router)
+    api.add_router("/", accounts_router)
+
+
+_mount_routers()

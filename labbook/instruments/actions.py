@@ -1,0 +1,45 @@
+"""Every change to instruments, chambers and channels goes through here (views, API, commands)."""
+
+from __future__ import annotations
+
+from django.db import transaction
+
+from labbook.accounts.permissions import require_manager
+from labbook.core.records import save_record
+from labbook.instruments.models import Chamber, Channel, Instrument
+
+
+@transaction.atomic
+def create_instrument(*, name: str, description: str = "", time_zone: str = "UTC", actor) -> Instrument:
+    require_manager(actor)
+    return save_record(Instrument(name=name, description=description, time_zone=time_zone), actor)
+
+
+@transaction.atomic
+def add_chamber(instrument: Instrument, *, name: str, kind: str, actor) -> Chamber:
+    require_manager(actor)
+    return save_record(Chamber(instrument=instrument, name=name, kind=kind), actor)
+
+
+@transaction.atomic
+def create_channel(
+    instrument: Instrument,
+    *,
+    name: str,
+    quantity: str,
+    unit: str,
+    location: str = "",
+    gas: str = "",
+    chamber: Chamber | None = None,
+    actor,
+) -> Channel:
+    channel = Channel(
+        instrument=instrument,
+        chamber=chamber,
+        name=name,
+        quantity=quantity,
+        unit=unit,
+        location=location,
+        gas=gas,
+    )
+    return save_record(channel, actor)

@@ -13,7 +13,7 @@ from ninja import NinjaAPI
 from ninja.errors import AuthenticationError, HttpError
 from ninja.errors import ValidationError as NinjaValidationError
 
-from labbook.accounts.auth import BearerToken, LabSession
+from labbook.accounts.auth import BearerToken, LabSession, docs_access_required
 from labbook.accounts.permissions import PermissionDenied
 
 api = NinjaAPI(
@@ -24,6 +24,7 @@ api = NinjaAPI(
     auth=[BearerToken(), LabSession()],
     urls_namespace="api",
     docs_url="/docs",
+    docs_decorator=docs_access_required,
 )
 
 

@@ -101,7 +101,9 @@ TEMPLATES = [
 # --- database -------------------------------------------------------------------------------
 DATABASE_URL = env_str("DATABASE_URL")
 if DATABASE_URL:
-    DATABASES = {"default": database_from_url(DATABASE_URL, conn_max_age=env_int("DB_CONN_MAX_AGE", 60))}
+    DATABASES = {
+        "default": database_from_url(DATABASE_URL, conn_max_age=env_int("DB_CONN_MAX_AGE", 60))
+    }
 else:
     DATABASES = {
         "default": {
@@ -133,10 +135,13 @@ TIME_ZONE = env_str("TIME_ZONE", "UTC")  # the lab's zone: storage stays UTC, pa
 # --- files ----------------------------------------------------------------------------------
 STATIC_URL = "/static/"
 STATIC_ROOT = DATA_DIR / "static"
+STATIC_ROOT.mkdir(exist_ok=True)
 MEDIA_ROOT = Path(env_str("LABBOOK_FILES_DIR", str(DATA_DIR / "files"))).resolve()
 MEDIA_URL = "/media/"  # never served directly: files go through views that check login
 STORAGES = {
-    "default": {"BACKEND": env_str("LABBOOK_FILE_STORAGE", "django.core.files.storage.FileSystemStorage")},
+    "default": {
+        "BACKEND": env_str("LABBOOK_FILE_STORAGE", "django.core.files.storage.FileSystemStorage")
+    },
     "staticfiles": {
         "BACKEND": "whitenoise.storage.CompressedManifestStaticFilesStorage"
         if not DEBUG
@@ -156,7 +161,7 @@ CSRF_COOKIE_SECURE = LABBOOK_HTTPS
 SECURE_SSL_REDIRECT = LABBOOK_HTTPS
 SECURE_HSTS_SECONDS = env_int("SECURE_HSTS_SECONDS", 31536000 if LABBOOK_HTTPS else 0)
 SECURE_HSTS_INCLUDE_SUBDOMAINS = LABBOOK_HTTPS
-SECURE_HSTS_PRELOAD = env_bool("SECURE_HSTS_PRELOAD", False)
+SECURE_HSTS_PRELOAD = env_bool("SECURE_HSTS_PRELOAD", LABBOOK_HTTPS)
 if env_bool("LABBOOK_BEHIND_PROXY", LABBOOK_HTTPS):
     SECURE_PROXY_SSL_HEADER = ("HTTP_X_FORWARDED_PROTO", "https")
 SECURE_REDIRECT_EXEMPT = [r"^healthz$"]

@@ -5,7 +5,16 @@ from labbook.accounts.models import ApiToken
 
 @admin.register(ApiToken)
 class ApiTokenAdmin(admin.ModelAdmin):
-    list_display = ("hint", "user", "label", "instrument", "read_only", "created_at", "last_used_at", "revoked_at")
+    list_display = (
+        "hint",
+        "user",
+        "label",
+        "instrument",
+        "read_only",
+        "created_at",
+        "last_used_at",
+        "revoked_at",
+    )
     list_filter = ("read_only", "instrument")
     search_fields = ("user__username", "label", "hint")
     readonly_fields = ("token_hash", "hint", "created_at", "last_used_at")

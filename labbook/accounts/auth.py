@@ -41,11 +41,11 @@ class Access:
         """
         if self.read_only:
             raise PermissionDenied("this token is read-only")
-        if self.token is not None and self.token.instrument_id is not None:
-            if instrument_id != self.token.instrument_id:
-                raise PermissionDenied(
-                    f"this token may write only records of instrument {self.token.instrument_id}"
-                )
+        scoped_to = self.token.instrument_id if self.token is not None else None
+        if scoped_to is not None and instrument_id != scoped_to:
+            raise PermissionDenied(
+                f"this token may write only records of instrument {self.token.instrument_id}"
+            )
 
     def require_manager(self) -> None:
         self.require_write()
@@ -101,3 +101,37 @@ class LabSession(APIKeyCookie):
     def authenticate(self, request, key: str | None) -> Access | None:
         _admit(request.user)
         return Access(user=request.user)
+
+
+def docs_access_required(view):
+    """The OpenAPI document and its browser need the same access as the API itself: a lab
+    member's session or a valid bearer token (schema-driven test tools send one)."""
+    from functools import wraps
+
+    from django.contrib.auth.views import redirect_to_login
+    from django.http import JsonResponse
+
+    bearer = BearerToken()
+
+    @wraps(view)
+    def wrapped(request, *args, **kwargs):
+        user = getattr(request, "user", None)
+        header = request.headers.get("Authorization", "")
+        if header.lower().startswith("bearer "):
+            try:
+                access = bearer.authenticate(request, header.split(" ", 1)[1].strip())
+            except HttpError as exc:
+                return JsonResponse({"detail": str(exc)}, status=exc.status_code)
+            user = access.user if access else None
+        if user is None or not user.is_authenticated:
+            if request.path.endswith(".json"):
+                return JsonResponse(
+                    {"detail": "authentication required: a bearer token or a login session"},
+                    status=401,
+                )
+            return redirect_to_login(request.get_full_path())
+        if not is_lab_member(user):
+            return JsonResponse({"detail": "this account is not a member of the lab"}, status=403)
+        return view(request, *args, **kwargs)
+
+    return wrapped

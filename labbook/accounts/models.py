@@ -7,7 +7,7 @@ from django.conf import settings
 from django.db import models
 from django.utils import timezone
 
-TOKEN_PREFIX = "lbk_"
+TOKEN_PREFIX = "lbk_"  # noqa: S105 - a public prefix that marks labbook tokens, not a secret
 
 
 def hash_token(raw: str) -> str:
@@ -32,13 +32,19 @@ class ApiToken(models.Model):
     and may be read-only.
     """
 
-    user = models.ForeignKey(settings.AUTH_USER_MODEL, on_delete=models.CASCADE, related_name="api_tokens")
+    user = models.ForeignKey(
+        settings.AUTH_USER_MODEL, on_delete=models.CASCADE, related_name="api_tokens"
+    )
     label = models.CharField(max_length=100, blank=True)
     token_hash = models.CharField(max_length=64, unique=True)
     # The first characters let a person tell tokens apart in lists without revealing them.
     hint = models.CharField(max_length=12)
     instrument = models.ForeignKey(
-        "instruments.Instrument", null=True, blank=True, on_delete=models.PROTECT, related_name="api_tokens"
+        "instruments.Instrument",
+        null=True,
+        blank=True,
+        on_delete=models.PROTECT,
+        related_name="api_tokens",
     )
     read_only = models.BooleanField(default=False)
     created_at = models.DateTimeField(auto_now_add=True)

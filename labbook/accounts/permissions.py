@@ -24,7 +24,9 @@ def _group_names(user) -> set[str]:
 
 
 def is_manager(user) -> bool:
-    return bool(user and user.is_authenticated and (user.is_superuser or MANAGERS in _group_names(user)))
+    return bool(
+        user and user.is_authenticated and (user.is_superuser or MANAGERS in _group_names(user))
+    )
 
 
 def is_lab_member(user) -> bool:

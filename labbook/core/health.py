@@ -77,7 +77,9 @@ def service_health() -> tuple[int, dict]:
         body["worker_count"] = workers
     healthy = database == "ok" and broker in ("ok", "embedded")
     # No worker is degraded, not down: uploads are still accepted and wait as pending rows.
-    body["status"] = "ok" if healthy and worker_state in ("ok", "embedded") else (
-        "degraded" if healthy else "down"
+    body["status"] = (
+        "ok"
+        if healthy and worker_state in ("ok", "embedded")
+        else ("degraded" if healthy else "down")
     )
     return (200 if healthy else 503), body

@@ -66,7 +66,10 @@ def sweep_pending_work() -> dict[str, int]:
     waiting = Job.objects.filter(
         Q(state=Job.State.PENDING, queued_at__isnull=True, created_at__lt=stale)
         | Q(state=Job.State.PENDING, queued_at__lt=stale)
-        | Q(state=Job.State.RUNNING, started_at__lt=stale - timedelta(seconds=settings.CELERY_TASK_TIME_LIMIT))
+        | Q(
+            state=Job.State.RUNNING,
+            started_at__lt=stale - timedelta(seconds=settings.CELERY_TASK_TIME_LIMIT),
+        )
     )
     counts = {"jobs": 0}
     for job_id in waiting.values_list("pk", flat=True)[:1000]:

@@ -10,7 +10,9 @@ from labbook.instruments.models import Chamber, Channel, Instrument
 
 
 @transaction.atomic
-def create_instrument(*, name: str, description: str = "", time_zone: str = "UTC", actor) -> Instrument:
+def create_instrument(
+    *, name: str, description: str = "", time_zone: str = "UTC", actor
+) -> Instrument:
     require_manager(actor)
     return save_record(Instrument(name=name, description=description, time_zone=time_zone), actor)
 

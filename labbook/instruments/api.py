@@ -1,7 +1,7 @@
 from __future__ import annotations
 
 from django.shortcuts import get_object_or_404
-from ninja import Router, Schema
+from ninja import Router, Schema, Status
 from pydantic import Field
 
 from labbook.instruments import actions
@@ -65,7 +65,7 @@ def list_instruments(request):
 def create_instrument(request, payload: InstrumentIn):
     request.auth.require_manager()
     instrument = actions.create_instrument(**payload.dict(), actor=request.auth.user)
-    return 201, instrument
+    return Status(201, instrument)
 
 
 @router.get("/instruments/{instrument_id}", response=InstrumentOut)
@@ -90,4 +90,4 @@ def create_channel(request, payload: ChannelIn):
         chamber = get_object_or_404(Chamber, pk=payload.chamber, instrument=instrument)
     data = payload.dict(exclude={"instrument", "chamber"})
     channel = actions.create_channel(instrument, chamber=chamber, **data, actor=request.auth.user)
-    return 201, channel
+    return Status(201, channel)

@@ -43,7 +43,9 @@ class Chamber(LabRecord):
     class Meta:
         ordering = ["instrument", "name"]
         constraints = [
-            models.UniqueConstraint(fields=["instrument", "name"], name="chamber_name_per_instrument")
+            models.UniqueConstraint(
+                fields=["instrument", "name"], name="chamber_name_per_instrument"
+            )
         ]
 
     def __str__(self) -> str:
@@ -66,7 +68,9 @@ class Channel(LabRecord):
     )
     name = models.CharField(max_length=100)
     quantity = models.CharField(max_length=20, choices=Quantity.choices)
-    unit = models.CharField(max_length=30, help_text="canonical unit of the stored values, e.g. mbar, K, %")
+    unit = models.CharField(
+        max_length=30, help_text="canonical unit of the stored values, e.g. mbar, K, %"
+    )
     location = models.CharField(max_length=200, blank=True, help_text="where the sensor sits")
     gas = models.CharField(
         max_length=20, blank=True, help_text="pressure gauges: the gas the gauge is calibrated for"
@@ -75,7 +79,9 @@ class Channel(LabRecord):
     class Meta:
         ordering = ["instrument", "name"]
         constraints = [
-            models.UniqueConstraint(fields=["instrument", "name"], name="channel_name_per_instrument")
+            models.UniqueConstraint(
+                fields=["instrument", "name"], name="channel_name_per_instrument"
+            )
         ]
 
     def __str__(self) -> str:
@@ -95,7 +101,9 @@ class Reading(models.Model):
     value = models.FloatField()
 
     class Meta:
-        constraints = [models.UniqueConstraint(fields=["channel", "t"], name="reading_once_per_instant")]
+        constraints = [
+            models.UniqueConstraint(fields=["channel", "t"], name="reading_once_per_instant")
+        ]
 
     def __str__(self) -> str:
         return f"{self.channel_id} @ {self.t.isoformat()} = {self.value}"

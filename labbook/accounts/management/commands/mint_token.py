@@ -14,7 +14,9 @@ class Command(BaseCommand):
         parser.add_argument("user", help="username the token acts for")
         parser.add_argument("--instrument", help="limit writes to this instrument (name or id)")
         parser.add_argument("--read-only", action="store_true", help="the token may only read")
-        parser.add_argument("--label", default="", help="what the token is for, e.g. 'prep PC logger'")
+        parser.add_argument(
+            "--label", default="", help="what the token is for, e.g. 'prep PC logger'"
+        )
 
     def handle(self, *args, user, instrument, read_only, label, **options):
         User = get_user_model()  # noqa: N806

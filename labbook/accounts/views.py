@@ -1,1 +1,1 @@
-
+"""The pages of people, groups and API tokens."""

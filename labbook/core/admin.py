@@ -1,1 +1,1 @@
-
+"""Admin (setup) pages of shared foundations."""

@@ -1,1 +1,1 @@
-
+"""The JSON API router of shared foundations."""

@@ -1,1 +1,3 @@
-
+"""Every state change of cryostats, refills, boil-off forecasts, refill plans and alerts: the one
+path views, API, tasks and commands call.
+"""

@@ -1,1 +1,1 @@
-
+"""Admin (setup) pages of cryostats, refills, boil-off forecasts, refill plans and alerts."""

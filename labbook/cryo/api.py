@@ -1,1 +1,1 @@
-
+"""The JSON API router of cryostats, refills, boil-off forecasts, refill plans and alerts."""

@@ -1,1 +1,1 @@
-
+"""Tables of cryostats, refills, boil-off forecasts, refill plans and alerts."""

@@ -1,1 +1,3 @@
-
+"""Celery tasks of cryostats, refills, boil-off forecasts, refill plans and alerts: they take ids,
+lock the row and are idempotent.
+"""

@@ -1,1 +1,1 @@
-
+"""The pages of cryostats, refills, boil-off forecasts, refill plans and alerts."""

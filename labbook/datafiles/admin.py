@@ -1,1 +1,2 @@
-
+"""Admin (setup) pages of acquired files: storage, readers, ingestion, thumbnails and statistics.
+"""

@@ -1,1 +1,1 @@
-
+"""Tables of acquired files: storage, readers, ingestion, thumbnails and statistics."""

@@ -1,1 +1,1 @@
-
+"""The pages of acquired files: storage, readers, ingestion, thumbnails and statistics."""

@@ -1,1 +1,1 @@
-
+"""Admin (setup) pages of instruments, chambers, channels and readings."""

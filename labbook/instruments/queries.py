@@ -47,8 +47,10 @@ def latest_readings(instrument: Instrument, at: datetime | None = None) -> list[
     return latest
 
 
-def reading_count(instrument: Instrument | None = None) -> int:
+def reading_count(instrument: Instrument | None = None, *, since: datetime | None = None) -> int:
     readings = Reading.objects.all()
     if instrument is not None:
         readings = readings.filter(channel__instrument=instrument)
+    if since is not None:
+        readings = readings.filter(t__gte=since)
     return readings.count()

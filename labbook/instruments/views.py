@@ -1,1 +1,1 @@
-
+"""The pages of instruments, chambers, channels and readings."""

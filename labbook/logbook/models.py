@@ -1,1 +1,1 @@
-
+"""Tables of sessions, notes and the instrument's timeline."""

@@ -1,1 +1,1 @@
-
+"""The pages of sessions, notes and the instrument's timeline."""

@@ -1,1 +1,1 @@
-
+"""Admin (setup) pages of lineage resolution, PROV-JSON and RO-Crate exports, integrity checks."""

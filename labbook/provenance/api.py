@@ -1,1 +1,1 @@
-
+"""The JSON API router of lineage resolution, PROV-JSON and RO-Crate exports, integrity checks."""

@@ -1,1 +1,1 @@
-
+"""Tables of lineage resolution, PROV-JSON and RO-Crate exports, integrity checks."""

@@ -1,1 +1,1 @@
-
+"""The pages of lineage resolution, PROV-JSON and RO-Crate exports, integrity checks."""

@@ -1,1 +1,1 @@
-
+"""Tables of samples, recipes and preparations with their derived doses."""

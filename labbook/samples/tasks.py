@@ -1,1 +1,3 @@
-
+"""Celery tasks of samples, recipes and preparations with their derived doses: they take ids, lock
+the row and are idempotent.
+"""

@@ -1,1 +1,1 @@
-
+"""The pages of samples, recipes and preparations with their derived doses."""

@@ -1,1 +1,1 @@
-
+"""Admin (setup) pages of tips, their mounting periods and conditioning events."""

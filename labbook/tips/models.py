@@ -1,1 +1,1 @@
-
+"""Tables of tips, their mounting periods and conditioning events."""

@@ -1,1 +1,3 @@
-
+"""Read-side queries of tips, their mounting periods and conditioning events; other apps read
+through these.
+"""

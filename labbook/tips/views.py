@@ -1,1 +1,1 @@
-
+"""The pages of tips, their mounting periods and conditioning events."""

@@ -1,1 +1,1 @@
-
+"""Admin (setup) pages of the pages' shared parts."""

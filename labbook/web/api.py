@@ -1,1 +1,1 @@
-
+"""The JSON API router of the pages' shared parts."""

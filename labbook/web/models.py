@@ -1,1 +1,1 @@
-
+"""Tables of the pages' shared parts."""

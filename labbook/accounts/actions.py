@@ -52,4 +52,8 @@ def set_role(user, role: str) -> None:
         user.groups.add(groups[MEMBERS])
     if role == "manager":
         user.groups.add(groups[MANAGERS])
+    # Managers use the setup pages (the admin); nobody else needs staff status.
+    if not user.is_superuser and user.is_staff != (role == "manager"):
+        user.is_staff = role == "manager"
+        user.save(update_fields=["is_staff"])
     user._labbook_groups = None

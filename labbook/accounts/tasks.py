@@ -1,2 +1,1 @@
-"""Celery tasks of people, groups and API tokens: they take ids, lock the row and are idempotent.
-"""
+"""Celery tasks of people, groups and API tokens: they take ids, lock the row and are idempotent."""

@@ -7,9 +7,8 @@ from datetime import timedelta
 from django.db.models import Prefetch
 from django.utils import timezone
 
-from labbook.instruments.models import Chamber
-
 from labbook.instruments import queries as instrument_queries
+from labbook.instruments.models import Chamber
 
 
 def dashboard_summary() -> dict:

@@ -67,3 +67,12 @@ def test_logout_is_a_post(member):
     assert client.get("/logout/").status_code == 405
     assert client.post("/logout/").status_code == 302
     assert client.get("/").status_code == 302
+
+
+def test_managers_reach_the_setup_pages_without_delete_rights_on_records(manager):
+    client = Client()
+    client.force_login(manager)
+    assert client.get("/admin/").status_code == 200
+    assert client.get("/admin/instruments/instrument/").status_code == 200
+    assert manager.has_perm("instruments.change_instrument")
+    assert not manager.has_perm("instruments.delete_instrument")  # retired, never deleted

@@ -1,2 +1,0 @@
-"""Every state change of the pages' shared parts: the one path views, API, tasks and commands call.
-"""

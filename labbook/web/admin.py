@@ -1,1 +1,0 @@
-"""Admin (setup) pages of the pages' shared parts."""

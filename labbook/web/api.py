@@ -1,1 +1,0 @@
-"""The JSON API router of the pages' shared parts."""

@@ -1,1 +1,0 @@
-"""Tables of the pages' shared parts."""

@@ -23,14 +23,7 @@ from labbook.science.deposition import (
 )
 from labbook.science.errors import ScienceInputError
 from labbook.science.surfaces import LATTICE_CONSTANTS, monolayer_density_per_cm2
-
-
-def printed(value: str):
-    """pytest.approx to half a unit of the last printed digit of a published number."""
-    mantissa, _, exponent = value.lower().partition("e")
-    decimals = len(mantissa.partition(".")[2])
-    scale = 10.0 ** int(exponent or 0)
-    return pytest.approx(float(value), abs=0.5 * 10.0**-decimals * scale * (1 + 1e-9))
+from tests.science.published import printed
 
 
 def ml_per_min(material, substrate, rate_angstrom_per_s=0.1, tooling_factor=1.0):

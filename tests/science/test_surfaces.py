@@ -15,14 +15,7 @@ from labbook.science.surfaces import (
     monolayer_density_per_cm2,
     parse_substrate,
 )
-
-
-def printed(value: str):
-    """pytest.approx to half a unit of the last printed digit of a published number."""
-    mantissa, _, exponent = value.lower().partition("e")
-    decimals = len(mantissa.partition(".")[2])
-    scale = 10.0 ** int(exponent or 0)
-    return pytest.approx(float(value), abs=0.5 * 10.0**-decimals * scale * (1 + 1e-9))
+from tests.science.published import printed
 
 
 def test_lattice_constants_and_their_sources():

@@ -11,16 +11,9 @@ from hypothesis import strategies as st
 from labbook.science import vacuum
 from labbook.science.errors import OutOfRangeError, ScienceInputError, UnknownNameError
 from labbook.science.surfaces import monolayer_density_per_cm2
+from tests.science.published import printed
 
 TORR_IN_MBAR = sc.torr / 100  # scipy.constants
-
-
-def printed(value: str):
-    """pytest.approx to half a unit of the last printed digit of a published number."""
-    mantissa, _, exponent = value.lower().partition("e")
-    decimals = len(mantissa.partition(".")[2])
-    scale = 10.0 ** int(exponent or 0)
-    return pytest.approx(float(value), abs=0.5 * 10.0**-decimals * scale * (1 + 1e-9))
 
 
 def hertz_knudsen_scipy(pressure_pa, molar_mass_g_per_mol, temperature_k):

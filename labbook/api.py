@@ -15,6 +15,8 @@ from ninja.errors import ValidationError as NinjaValidationError
 
 from labbook.accounts.auth import BearerToken, LabSession, docs_access_required
 from labbook.accounts.permissions import PermissionDenied
+from labbook.samples.steps import StepErrors
+from labbook.science.errors import ScienceInputError
 
 api = NinjaAPI(
     title="labbook API",
@@ -56,6 +58,20 @@ def _invalid_record(request, exc: DjangoValidationError):
     return _error(request, 422, "the record is not valid", errors)
 
 
+@api.exception_handler(StepErrors)
+def _bad_steps(request, exc: StepErrors):
+    errors = [{"field": field, "message": message} for field, message in exc.errors.items()]
+    return _error(request, 422, "the request has invalid fields", errors)
+
+
+@api.exception_handler(ScienceInputError)
+def _bad_quantity(request, exc: ScienceInputError):
+    field = getattr(exc, "field", None) or exc.argument or ""
+    return _error(
+        request, 422, "the request has invalid fields", [{"field": field, "message": str(exc)}]
+    )
+
+
 @api.exception_handler(AuthenticationError)
 def _unauthenticated(request, exc):
     return _error(request, 401, "authentication required: a bearer token or a login session")
@@ -92,8 +108,10 @@ def _database_unavailable(request, exc):
 def _mount_routers() -> None:
     from labbook.accounts.api import router as accounts_router
     from labbook.instruments.api import router as instruments_router
+    from labbook.samples.api import router as samples_router
 
     api.add_router("/", instruments_router)
+    api.add_router("/", samples_router)
     api.add_router("/", accounts_router)
 
 

@@ -1,1 +1,7 @@
-"""The JSON API router of samples, recipes and preparations with their derived doses."""
+"""The JSON API router of samples, recipes, deposition sources and preparations."""
+
+from __future__ import annotations
+
+from ninja import Router
+
+router = Router(tags=["samples"])

@@ -1,1 +1,7 @@
-"""The JSON API router of sessions, notes and the instrument's timeline."""
+"""The JSON API router of the logbook app."""
+
+from __future__ import annotations
+
+from ninja import Router
+
+router = Router(tags=["logbook"])

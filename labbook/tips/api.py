@@ -1,1 +1,7 @@
-"""The JSON API router of tips, their mounting periods and conditioning events."""
+"""The JSON API router of the tips app."""
+
+from __future__ import annotations
+
+from ninja import Router
+
+router = Router(tags=["tips"])

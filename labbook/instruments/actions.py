@@ -2,11 +2,12 @@
 
 from __future__ import annotations
 
+from django.core.exceptions import ValidationError
 from django.db import transaction
 
-from labbook.accounts.permissions import require_manager
+from labbook.accounts.permissions import require_manager, require_member
 from labbook.core.records import save_record
-from labbook.instruments.models import Chamber, Channel, Instrument
+from labbook.instruments.models import Chamber, Channel, Instrument, InstrumentEvent
 
 
 @transaction.atomic
@@ -45,3 +46,30 @@ def create_channel(
         gas=gas,
     )
     return save_record(channel, actor)
+
+
+@transaction.atomic
+def record_event(
+    instrument: Instrument,
+    *,
+    kind: str,
+    start,
+    end=None,
+    summary: str = "",
+    details: dict | None = None,
+    actor,
+) -> InstrumentEvent:
+    """Log a bake-out, a cryogen transfer, a vent … on the instrument's timeline."""
+    require_member(actor)
+    if end is not None and end < start:
+        raise ValidationError({"end": "the event ends before it starts"})
+    event = InstrumentEvent(
+        instrument=instrument,
+        kind=kind,
+        start=start,
+        end=end,
+        summary=summary,
+        details=details or {},
+        recorded_by=actor if getattr(actor, "is_authenticated", False) else None,
+    )
+    return save_record(event, actor)

@@ -2,6 +2,7 @@ from __future__ import annotations
 
 from zoneinfo import available_timezones
 
+from django.conf import settings
 from django.core.exceptions import ValidationError
 from django.db import models
 
@@ -75,6 +76,11 @@ class Channel(LabRecord):
     gas = models.CharField(
         max_length=20, blank=True, help_text="pressure gauges: the gas the gauge is calibrated for"
     )
+    expected_interval_s = models.FloatField(
+        null=True,
+        blank=True,
+        help_text="how often the logger reads it; a reading older than 3× this is stale",
+    )
 
     class Meta:
         ordering = ["instrument", "name"]
@@ -88,22 +94,52 @@ class Channel(LabRecord):
         return f"{self.instrument} · {self.name} [{self.unit}]"
 
 
+class InstrumentEvent(LabRecord):
+    """Something that happened to an instrument over a stretch of time and matters for every
+    dataset taken during or after it: a bake-out, a cryogen transfer, a vent, a pump failure."""
+
+    class Kind(models.TextChoices):
+        BAKEOUT = "bakeout", "bake-out"
+        CRYOGEN_TRANSFER = "cryogen_transfer", "cryogen transfer"
+        VENT = "vent"
+        PUMP_FAILURE = "pump_failure", "pump failure"
+        MAINTENANCE = "maintenance"
+        OTHER = "other"
+
+    instrument = models.ForeignKey(Instrument, on_delete=models.PROTECT, related_name="events")
+    kind = models.CharField(max_length=20, choices=Kind.choices)
+    start = models.DateTimeField()
+    end = models.DateTimeField(null=True, blank=True, help_text="open while it lasts")
+    summary = models.CharField(max_length=200, blank=True)
+    # Kind-specific facts: a bake-out's zone temperatures {"zone": K} and the base pressure
+    # after it; a transfer's cryogen and litres.
+    details = models.JSONField(default=dict, blank=True)
+    recorded_by = models.ForeignKey(
+        settings.AUTH_USER_MODEL, null=True, blank=True, on_delete=models.PROTECT, related_name="+"
+    )
+
+    class Meta:
+        ordering = ["instrument", "-start"]
+        indexes = [models.Index(fields=["instrument", "start"], name="event_instrument_start")]
+
+    def __str__(self) -> str:
+        return f"{self.instrument} {self.get_kind_display()} from {self.start:%Y-%m-%d %H:%M}"
+
+
 class Reading(models.Model):
     """One logged value of a channel at an instant (UTC), in the channel's unit.
 
     Readings are facts from a logger, not edited records: they carry no history of their own.
-    They are unique on (channel, t) so a logger may resend a batch after a timeout.
+    The key is (channel, t), so a logger may resend a batch after a timeout and each instant
+    is stored once. On PostgreSQL the table is partitioned by year of ``t``
+    (``labbook/instruments/partitions.py``) so that ten years of logging stay fast and an old
+    year can be detached and archived whole.
     """
 
-    id = models.BigAutoField(primary_key=True)
+    pk = models.CompositePrimaryKey("channel_id", "t")
     channel = models.ForeignKey(Channel, on_delete=models.PROTECT, related_name="readings")
     t = models.DateTimeField()
     value = models.FloatField()
-
-    class Meta:
-        constraints = [
-            models.UniqueConstraint(fields=["channel", "t"], name="reading_once_per_instant")
-        ]
 
     def __str__(self) -> str:
         return f"{self.channel_id} @ {self.t.isoformat()} = {self.value}"

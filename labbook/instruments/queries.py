@@ -3,10 +3,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 
-from django.db.models import QuerySet
+from django.db.models import Q, QuerySet
 from django.utils import timezone
 
-from labbook.instruments.models import Channel, Instrument, Reading
+from labbook.instruments.models import Channel, Instrument, InstrumentEvent, Reading
 
 
 def instruments_for(user) -> QuerySet[Instrument]:
@@ -54,3 +54,21 @@ def reading_count(instrument: Instrument | None = None, *, since: datetime | Non
     if since is not None:
         readings = readings.filter(t__gte=since)
     return readings.count()
+
+
+def events_between(
+    instrument: Instrument,
+    since: datetime | None = None,
+    until: datetime | None = None,
+    *,
+    kind: str | None = None,
+) -> QuerySet[InstrumentEvent]:
+    """Events that overlap [since, until]: an open event (no end) overlaps everything after it."""
+    events = instrument.events.filter(retired_at__isnull=True)
+    if until is not None:
+        events = events.filter(start__lte=until)
+    if since is not None:
+        events = events.filter(Q(end__isnull=True) | Q(end__gte=since))
+    if kind is not None:
+        events = events.filter(kind=kind)
+    return events.order_by("start")

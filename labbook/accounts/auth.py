@@ -47,6 +47,11 @@ class Access:
                 f"this token may write only records of instrument {self.token.instrument_id}"
             )
 
+    def require_write_any(self) -> None:
+        """Raise unless this caller may write at all (per-record scope is checked later)."""
+        if self.read_only:
+            raise PermissionDenied("this token is read-only")
+
     def require_manager(self) -> None:
         self.require_write()
         if self.token is not None and self.token.instrument_id is not None:

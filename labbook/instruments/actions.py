@@ -8,6 +8,8 @@ from django.db import transaction
 from labbook.accounts.permissions import require_manager, require_member
 from labbook.core.records import save_record
 from labbook.instruments.models import Chamber, Channel, Instrument, InstrumentEvent
+from labbook.science.errors import ScienceInputError
+from labbook.science.units import parse_quantity
 
 
 @transaction.atomic
@@ -34,9 +36,18 @@ def create_channel(
     location: str = "",
     gas: str = "",
     chamber: Chamber | None = None,
+    expected_interval_s: float | None = None,
     actor,
 ) -> Channel:
+    require_member(actor)
+    try:
+        parse_quantity(1.0, unit, field="unit")
+    except ScienceInputError:
+        raise ValidationError(
+            {"unit": f"{unit!r} is not a unit labbook can convert (e.g. mbar, K, %)"}
+        ) from None
     channel = Channel(
+        expected_interval_s=expected_interval_s,
         instrument=instrument,
         chamber=chamber,
         name=name,

@@ -3,6 +3,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from datetime import datetime, timedelta
 
+from django.db import connection
 from django.db.models import Q, QuerySet
 from django.utils import timezone
 
@@ -72,3 +73,140 @@ def events_between(
     if kind is not None:
         events = events.filter(kind=kind)
     return events.order_by("start")
+
+
+# --- the instrument's state at an instant -----------------------------------------------------
+
+#: After a cryogen transfer the microscope drifts and the bath bubbles; data taken within this
+#: window are flagged (2 h, common practice).
+AFTER_TRANSFER_WINDOW = timedelta(hours=2)
+#: A channel with no expected interval is stale after an hour without a reading.
+DEFAULT_STALE_AFTER = timedelta(hours=1)
+STALE_FACTOR = 3
+
+
+@dataclass(frozen=True)
+class ChannelState:
+    channel: Channel
+    t: datetime | None
+    value: float | None
+    age: timedelta | None
+    flags: tuple[str, ...]
+    vacuum_range: object | None = None  # labbook.science.vacuum.VacuumRange for pressures
+
+
+@dataclass(frozen=True)
+class InstrumentState:
+    instrument: Instrument
+    at: datetime
+    channels: list[ChannelState]
+    flags: tuple[str, ...]
+    events: list[InstrumentEvent]
+
+
+_LATEST_PER_CHANNEL_SQL = """
+SELECT c.id, r.t, r.value
+FROM instruments_channel c
+LEFT JOIN LATERAL (
+    SELECT r.t, r.value FROM instruments_reading r
+    WHERE r.channel_id = c.id AND r.t <= %s
+    ORDER BY r.t DESC
+    LIMIT 1
+) r ON true
+WHERE c.instrument_id = %s AND c.retired_at IS NULL
+"""
+
+
+def latest_values(instrument: Instrument, at: datetime) -> dict[int, tuple[datetime, float]]:
+    """{channel id: (t, value)} of the last reading at or before ``at``, per channel.
+
+    On PostgreSQL one LATERAL query: an index probe per channel on (channel_id, t), newest
+    partition first (PERFORMANCE.md: 0.34 ms for 20 channels, where the ORM's DISTINCT ON
+    scans every reading). Elsewhere one probe per channel through the ORM.
+    """
+    if connection.vendor == "postgresql":
+        with connection.cursor() as cursor:
+            cursor.execute(_LATEST_PER_CHANNEL_SQL, [at, instrument.pk])
+            return {cid: (t, value) for cid, t, value in cursor.fetchall() if t is not None}
+    found = {}
+    for channel_id in instrument.channels.filter(retired_at__isnull=True).values_list(
+        "pk", flat=True
+    ):
+        row = (
+            Reading.objects.filter(channel_id=channel_id, t__lte=at)
+            .order_by("-t")
+            .values_list("t", "value")
+            .first()
+        )
+        if row:
+            found[channel_id] = row
+    return found
+
+
+def _channel_flags(channel: Channel, value: float | None, age: timedelta | None):
+    from labbook.science.errors import ScienceInputError
+    from labbook.science.units import convert
+    from labbook.science.vacuum import vacuum_range
+
+    flags = []
+    if value is None:
+        return ("no_reading",), None
+    stale_after = (
+        timedelta(seconds=STALE_FACTOR * channel.expected_interval_s)
+        if channel.expected_interval_s
+        else DEFAULT_STALE_AFTER
+    )
+    if age is not None and age > stale_after:
+        flags.append("stale")
+    found_range = None
+    if channel.quantity == Channel.Quantity.PRESSURE:
+        try:
+            found_range = vacuum_range(convert(value, channel.unit, "mbar"))
+        except ScienceInputError:
+            flags.append("not_a_vacuum")
+        else:
+            if found_range.name not in ("ultra-high", "extreme-high"):
+                flags.append("above_uhv")
+    return tuple(flags), found_range
+
+
+def state_at(instrument: Instrument, at: datetime) -> InstrumentState:
+    """The latest reading of every channel at or before ``at`` with its age and flags, and
+    the instrument's flags: a bake-out or a cryogen transfer under way, or a transfer within
+    the last two hours (drift and bubbling)."""
+    latest = latest_values(instrument, at)
+    channel_states = []
+    for channel in channels_of(instrument):
+        t, value = latest.get(channel.pk, (None, None))
+        age = None if t is None else at - t
+        flags, found_range = _channel_flags(channel, value, age)
+        channel_states.append(ChannelState(channel, t, value, age, flags, found_range))
+
+    events = list(events_between(instrument, at - AFTER_TRANSFER_WINDOW, at))
+    flags = set()
+    for event in events:
+        under_way = event.start <= at and (event.end is None or event.end >= at)
+        if event.kind == InstrumentEvent.Kind.CRYOGEN_TRANSFER:
+            flags.add("cryogen_transfer_under_way" if under_way else "after_cryogen_transfer")
+        elif event.kind == InstrumentEvent.Kind.BAKEOUT and under_way:
+            flags.add("bakeout_under_way")
+        elif event.kind == InstrumentEvent.Kind.VENT and under_way:
+            flags.add("vented")
+    if any("above_uhv" in c.flags for c in channel_states):
+        flags.add("pressure_above_uhv")
+    return InstrumentState(instrument, at, channel_states, tuple(sorted(flags)), events)
+
+
+def readings_between(
+    channel: Channel, since: datetime, until: datetime, *, limit: int | None = None
+) -> list[tuple[datetime, float]]:
+    """(t, value) pairs of one channel in [since, until], oldest first: plain tuples, since
+    building model instances costs more than the query (PERFORMANCE.md §6)."""
+    rows = (
+        Reading.objects.filter(channel=channel, t__gte=since, t__lte=until)
+        .order_by("t")
+        .values_list("t", "value")
+    )
+    if limit is not None:
+        rows = rows[:limit]
+    return list(rows)

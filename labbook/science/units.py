@@ -24,6 +24,7 @@ so a bias can never be typed in eV by mistake.
 
 from __future__ import annotations
 
+import functools
 import math
 import re
 import tokenize
@@ -281,3 +282,50 @@ def convert(value: float, from_unit: str, to_unit: str, *, field: str = "value")
         raise QuantityError(f"{field}: {value!r} is not a finite number", field=field)
     quantity = ureg.Quantity(float(value), source)
     return _to_target(quantity, target, field=field, shown=f"{value!r} {from_unit}")
+
+
+# --- many values into one unit (logged readings) -----------------------------------------------
+
+
+@functools.lru_cache(maxsize=1024)
+def _linear_map(from_unit: str, to_unit: str) -> tuple[float, float] | None:
+    """(scale, offset) with value_in_to = value_in_from · scale + offset, or None when the two
+    units are not related by such a map (wrong dimension, or a voltage taken as an energy)."""
+    try:
+        source = ureg.parse_units(from_unit)
+        target = ureg.parse_units(to_unit)
+    except _UNIT_PARSE_ERRORS:
+        return None
+    if source.dimensionality != target.dimensionality:
+        return None
+    try:
+        at_zero = float(ureg.Quantity(0.0, source).to(target).magnitude)
+        at_one = float(ureg.Quantity(1.0, source).to(target).magnitude)
+    except (pint.errors.DimensionalityError, pint.errors.OffsetUnitCalculusError):
+        return None
+    return at_one - at_zero, at_zero
+
+
+def parse_many(value: Any, unit: str, *, field: str) -> float:
+    """:func:`parse_quantity` for a stream of values in a few recurring units (a logger's
+    batch of "2.1e-10 mbar", "2.3e-10 mbar", …): the unit conversion is looked up once per
+    distinct unit and cached, so a batch costs a regex and a multiply per value. Every case
+    the cache cannot settle (an odd syntax, an unknown or incompatible unit) goes through
+    :func:`parse_quantity` and gets its full error message."""
+    if isinstance(value, Real) and not isinstance(value, bool):
+        number = float(value)
+        if math.isfinite(number):
+            return number
+    elif isinstance(value, str):
+        match = _NUMBER_THEN_UNIT.match(value)
+        if match is not None:
+            unit_text = match.group("unit")
+            number = float(match.group("number"))
+            if not unit_text:
+                return number
+            mapping = _linear_map(unit_text, unit)
+            if mapping is not None:
+                converted = number * mapping[0] + mapping[1]
+                if math.isfinite(converted):
+                    return converted
+    return parse_quantity(value, unit, field=field)

@@ -280,3 +280,28 @@ def test_property_any_text_gives_a_finite_float_or_a_quantity_error(text):
         assert error.field == "pressure_mbar"
     else:
         assert math.isfinite(result)
+
+
+@pytest.mark.parametrize(
+    ("value", "unit"),
+    [("2.1e-10 mbar", "mbar"), ("1e-8 Torr", "mbar"), ("1e-6 Pa", "mbar"), ("25 degC", "K"),
+     ("-10 degC", "K"), ("300 K", "K"), (4.2, "K"), ("77", "K"), ("50 %", "%"), ("2 mL", "L")],
+)
+def test_parse_many_agrees_with_parse_quantity(value, unit):
+    # parse_quantity is itself checked against pint above; the cached path must give the same.
+    from labbook.science.units import parse_many
+
+    assert parse_many(value, unit, field="value") == pytest.approx(
+        parse_quantity(value, unit, field="value"), rel=1e-12
+    )
+
+
+def test_parse_many_reports_what_parse_quantity_reports():
+    from labbook.science.units import parse_many
+
+    for bad in ("3 mbar", "fast", float("nan"), "1e-8 parsec"):
+        with pytest.raises(QuantityError) as cached:
+            parse_many(bad, "K", field="value")
+        with pytest.raises(QuantityError) as direct:
+            parse_quantity(bad, "K", field="value")
+        assert str(cached.value) == str(direct.value)

@@ -111,6 +111,8 @@ else:
             "NAME": str(DATA_DIR / "labbook.sqlite3"),
             # WAL lets the web process read while a command writes a year of readings.
             "OPTIONS": {"init_command": "PRAGMA journal_mode=WAL;", "timeout": 20},
+            # A file, not memory: tests that start a real server or worker process share it.
+            "TEST": {"NAME": str(DATA_DIR / "test-labbook.sqlite3")},
         }
     }
 DEFAULT_AUTO_FIELD = "django.db.models.BigAutoField"

@@ -22,6 +22,7 @@ class Figure:
     floor: float
     floor_name: str
     goal_ratio: float | None = None  # the ratio to stay under, where the issues set one
+    goal_value: float | None = None  # an absolute bound in ``unit``, where the issues set one
 
     @property
     def ratio(self) -> float:
@@ -29,7 +30,12 @@ class Figure:
 
     @property
     def met(self) -> bool | None:
-        return None if self.goal_ratio is None else self.ratio <= self.goal_ratio
+        checks = []
+        if self.goal_ratio is not None:
+            checks.append(self.ratio <= self.goal_ratio)
+        if self.goal_value is not None:
+            checks.append(self.value <= self.goal_value)
+        return all(checks) if checks else None
 
     def as_dict(self) -> dict:
         return {**asdict(self), "ratio": self.ratio, "met": self.met}

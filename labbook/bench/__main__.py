@@ -33,14 +33,19 @@ def main(argv: list[str] | None = None) -> int:
         parser.error(f"unknown benchmark(s) {', '.join(unknown)}; known: {', '.join(registry)}")
 
     setup_test_environment()
-    databases = setup_databases(verbosity=0, interactive=False)
+    databases = setup_databases(verbosity=0, interactive=False, serialized_aliases=set())
     figures = []
     try:
         for name in names:
             for figure in registry[name]():
                 figures.append(figure)
                 verdict = "" if figure.met is None else ("  ok" if figure.met else "  ABOVE GOAL")
-                goal = f" (goal ≤ {figure.goal_ratio:g}×)" if figure.goal_ratio else ""
+                goals = []
+                if figure.goal_ratio is not None:
+                    goals.append(f"≤ {figure.goal_ratio:g}×")
+                if figure.goal_value is not None:
+                    goals.append(f"≤ {figure.goal_value:g} {figure.unit}")
+                goal = f" (goal {', '.join(goals)})" if goals else ""
                 print(
                     f"{figure.name:<52} {figure.ratio:7.2f}× floor{goal}  "
                     f"{figure.value:10.4g} {figure.unit} vs {figure.floor:.4g} {figure.unit} "

@@ -71,7 +71,7 @@ def surface_state(sample: Sample, at: datetime) -> SurfaceState:
     """The steps since the last cleaning step at or before ``at``, with the cumulative
     coverage per adsorbate, the gas exposures (corrected for the gauge) and the anneal time.
 
-    Two queries whatever the length of the sample's history: steps with their preparations.
+    One query whatever the length of the sample's history: steps with their preparations.
     """
     all_steps = _steps_until(sample, at)
     last_clean = None
@@ -80,6 +80,35 @@ def surface_state(sample: Sample, at: datetime) -> SurfaceState:
             last_clean = index
     since = all_steps if last_clean is None else all_steps[last_clean + 1 :]
     cleaning_step = None if last_clean is None else all_steps[last_clean]
+    return _fold(sample, at, cleaning_step, since)
+
+
+def surface_states_after(
+    sample: Sample, preparations: list[Preparation]
+) -> dict[int, SurfaceState]:
+    """{preparation id: the surface right after it}, folded over steps already loaded (the
+    preparations with their steps prefetched): no query per preparation."""
+    states: dict[int, SurfaceState] = {}
+    since: list[PreparationStep] = []
+    cleaning: PreparationStep | None = None
+    for preparation in sorted(preparations, key=lambda p: (p.started_at, p.pk)):
+        for step in preparation.steps.all():
+            step.preparation = preparation  # already loaded: no query when the fold reads it
+            if step.cleans:
+                cleaning, since = step, []
+            else:
+                since.append(step)
+        states[preparation.pk] = _fold(sample, preparation.started_at, cleaning, list(since))
+    return states
+
+
+def _fold(
+    sample: Sample,
+    at: datetime,
+    cleaning_step: PreparationStep | None,
+    since: list[PreparationStep],
+) -> SurfaceState:
+    """The surface-state rule, in one place: what the steps since the cleaning add up to."""
     state = SurfaceState(
         sample=sample,
         at=at,

@@ -263,6 +263,13 @@ def record_preparation(
     """Log a preparation with the values actually used; every derived dose is computed here,
     once, by the science library. All or nothing: a bad step saves no step."""
     require_member(actor)
+    retired = {
+        name: f"{record} is retired; it cannot take new preparations"
+        for name, record in (("sample", sample), ("instrument", instrument), ("recipe", recipe))
+        if record is not None and record.retired_at is not None
+    }
+    if retired:
+        raise StepErrors(retired)
     if steps is None:
         if recipe is None:
             raise StepErrors({"steps": "give the steps, or a recipe to follow unchanged"})

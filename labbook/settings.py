@@ -111,8 +111,9 @@ else:
             "NAME": str(DATA_DIR / "labbook.sqlite3"),
             # WAL lets the web process read while a command writes a year of readings.
             "OPTIONS": {"init_command": "PRAGMA journal_mode=WAL;", "timeout": 20},
-            # A file, not memory: tests that start a real server or worker process share it.
-            "TEST": {"NAME": str(DATA_DIR / "test-labbook.sqlite3")},
+            # A file, not memory, so a server or worker process started by a test can share it
+            # (the test hands it the path); one per test run, so two runs never collide.
+            "TEST": {"NAME": str(DATA_DIR / f"test-labbook-{os.getpid()}.sqlite3")},
         }
     }
 DEFAULT_AUTO_FIELD = "django.db.models.BigAutoField"

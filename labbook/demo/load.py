@@ -23,6 +23,7 @@ from labbook.demo import DemoContext
 from labbook.demo.instruments import CHANNELS, ensure_instrument, insert_readings
 from labbook.demo.people import ensure_people
 from labbook.demo.readings import Scenario, bake_start_for, series, time_grid
+from labbook.demo.samples import load_samples
 from labbook.instruments.models import Instrument, Reading
 
 
@@ -81,6 +82,7 @@ STEPS: list[tuple[str, Step]] = [
     ("people", ensure_people),
     ("instrument", ensure_instrument),
     ("readings", load_readings),
+    ("samples", load_samples),
 ]
 
 

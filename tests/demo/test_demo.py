@@ -168,9 +168,14 @@ def test_running_twice_gives_the_same_counts():
     second = load_demo(days=3, now=NOW)
     assert second == first
     assert _db_counts() == before
-    assert first == {"users": 5, "instruments": 1, "chambers": 3, "channels": 8} | {
-        "readings": before["readings"]
-    }
+    # The totals of the steps tested here; later steps' totals are in their own tests.
+    own = ("users", "instruments", "chambers", "channels", "readings")
+    assert {key: first[key] for key in own} == {
+        "users": 5,
+        "instruments": 1,
+        "chambers": 3,
+        "channels": 8,
+    } | {"readings": before["readings"]}
 
 
 @pytest.mark.django_db

@@ -276,6 +276,14 @@ def record_preparation(
         steps = steps_from_recipe(recipe)
     if ended_at is not None and ended_at < started_at:
         raise StepErrors({"ended_at": "ends before it starts"})
+    twin = Preparation.objects.filter(
+        sample=sample, instrument=instrument, started_at=started_at, retired_at__isnull=True
+    ).first()
+    if twin is not None:
+        # The same form sent twice (a double Enter, a retried request) must not log twice.
+        raise StepErrors(
+            {"started_at": f"this sample already has a preparation at this time (#{twin.pk})"}
+        )
     normalised = normalise_steps(list(steps), _context(instrument_id=instrument.pk, at=started_at))
 
     preparation = save_record(

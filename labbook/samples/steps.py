@@ -402,7 +402,8 @@ def normalise_step(data: Mapping[str, Any], context: StepContext | None = None) 
     allowed = {"kind", "cleans", *COMMON_FIELDS, *kind.fields}
     for name in data:
         if name not in allowed and name not in kind.derived_fields:
-            errors[name] = f"is not a field of a {kind_name} step"
+            article = "an" if kind_name[0] in "aeiou" else "a"
+            errors[name] = f"is not a field of {article} {kind_name} step"
 
     values: dict[str, Any] = {}
     raw: dict[str, Any] = {}
@@ -428,6 +429,12 @@ def normalise_step(data: Mapping[str, Any], context: StepContext | None = None) 
                 values[name] = vacuum.normalize_gas(values[name], known=vacuum.CRC_SENSITIVITIES)
             except ScienceInputError as exc:
                 errors[name] = str(exc)
+                continue
+            # Checked here, with the other fields, so one answer names every problem: the
+            # derivations need the gas's gauge sensitivity (and its mass for impingement).
+            if values[name] not in vacuum.CRC_SENSITIVITIES:
+                known = ", ".join(sorted(vacuum.CRC_SENSITIVITIES))
+                errors[name] = f"unknown gas {values[name]!r}: the gauge table knows {known}"
 
     if kind_name == "anneal" and not errors:
         _check_anneal_temperature(values, errors)

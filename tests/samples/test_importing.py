@@ -318,7 +318,7 @@ def test_a_value_the_step_kind_has_no_field_for_is_rejected_or_kept_in_the_notes
     report = import_preparations(sheet, mapping, actor=lab["amira"], commit=True)
     (problem,) = report.problems
     assert (problem.row, problem.field, problem.column) == (2, "pressure_mbar", "p (mbar)")
-    assert "is not a field of a anneal step" in problem.message
+    assert "is not a field of an anneal step" in problem.message
     assert not Preparation.objects.exists()
 
     sheet, mapping = _pressure_beside_an_anneal("notes")

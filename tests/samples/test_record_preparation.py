@@ -289,7 +289,8 @@ def test_outsiders_cannot_log(outsider, instrument, member):
 def test_retired_records_take_no_new_preparations(member, instrument, crystal):
     actions.retire(crystal, actor=member)
     with pytest.raises(StepErrors) as caught:
-        actions.record_preparation(sample=crystal, instrument=instrument, started_at=T0, steps=CLEAN_CU,
-                                   actor=member)
+        actions.record_preparation(
+            sample=crystal, instrument=instrument, started_at=T0, steps=CLEAN_CU, actor=member
+        )
     assert list(caught.value.errors) == ["sample"]
     assert crystal.history.first().retired_at is not None  # the retirement is in the history

@@ -13,6 +13,7 @@ from django.utils import timezone
 from ninja import Field, Query, Router, Schema, Status
 from ninja.pagination import LimitOffsetPagination, paginate
 
+from labbook.core.schemas import AwareTime
 from labbook.instruments.models import Instrument
 from labbook.logbook import actions, queries
 from labbook.logbook.models import Session
@@ -26,7 +27,6 @@ from labbook.logbook.schemas import (
 )
 from labbook.samples.models import Sample
 from labbook.tips.models import Tip
-from labbook.tips.schemas import AwareTime
 
 router = Router(tags=["logbook"])
 

@@ -9,7 +9,7 @@ from ninja import Schema
 from pydantic import Field
 
 # One definition of "an aware time, stored in UTC" for the tips and logbook APIs.
-from labbook.tips.schemas import AwareTime
+from labbook.core.schemas import AwareTime
 
 
 class SessionIn(Schema):

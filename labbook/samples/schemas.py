@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import contextlib
 import operator
-import re
 from datetime import datetime
 from functools import reduce
 from typing import Annotated, Any, Literal
@@ -20,16 +19,11 @@ from django.core.exceptions import FieldDoesNotExist
 from ninja import Schema
 from ninja.errors import ValidationError as RequestInvalid
 from pydantic import (
-    AfterValidator,
-    BeforeValidator,
     Field,
-    PlainValidator,
-    ValidationInfo,
-    WithJsonSchema,
     create_model,
 )
-from pydantic_core import PydanticCustomError
 
+from labbook.core.schemas import AwareTime, quantity
 from labbook.samples.models import (
     DepositionSource,
     Location,
@@ -43,59 +37,6 @@ from labbook.science.errors import ScienceInputError
 from labbook.science.units import parse_quantity
 
 # --- field types ------------------------------------------------------------------------------
-
-# A "+01:00" offset in a query string arrives as " 01:00" when the caller did not percent-encode
-# it (a plain `curl ...?at=2026-03-02T09:00:00+01:00`); read it as the offset it was meant to be.
-_OFFSET_LOST_TO_A_SPACE = re.compile(r"(T\d{2}:\d{2}(?::\d{2}(?:\.\d+)?)?) (\d{2}:?\d{2})$")
-
-
-def _restore_plus(value: Any) -> Any:
-    if isinstance(value, str):
-        return _OFFSET_LOST_TO_A_SPACE.sub(r"\1+\2", value.strip())
-    return value
-
-
-def _require_zone(value: datetime) -> datetime:
-    # Storage is UTC (DESIGN §2): a time without a zone could be the lab's, the PC's or UTC,
-    # and guessing would shift a preparation by hours.
-    if value.tzinfo is None or value.utcoffset() is None:
-        raise PydanticCustomError(
-            "time_zone_needed",
-            "needs a time zone: end it with Z (UTC) or an offset such as +01:00",
-        )
-    return value
-
-
-AwareTime = Annotated[datetime, BeforeValidator(_restore_plus), AfterValidator(_require_zone)]
-
-
-def quantity(unit: str, *, positive: bool = False, non_negative: bool = False) -> Any:
-    """A number in ``unit``, or a string with any unit pint converts to it ("15 min")."""
-
-    def read(value: Any, info: ValidationInfo) -> float:
-        name = info.field_name or "value"
-        try:
-            number = parse_quantity(value, unit, field=name)
-        except ScienceInputError as exc:
-            raise PydanticCustomError(
-                "quantity", "{message}", {"message": str(exc).removeprefix(f"{name}: ")}
-            ) from None
-        if positive and not number > 0:
-            raise PydanticCustomError("quantity", f"must be more than 0 {unit}, got {number:g}")
-        if non_negative and number < 0:
-            raise PydanticCustomError("quantity", f"must not be negative, got {number:g}")
-        return number
-
-    return Annotated[
-        float,
-        PlainValidator(read),
-        WithJsonSchema(
-            {
-                "anyOf": [{"type": "number"}, {"type": "string"}],
-                "description": f"in {unit}, or a string with a unit",
-            }
-        ),
-    ]
 
 
 def _step_kinds_help() -> str:

@@ -7,68 +7,14 @@ answered in UTC.
 
 from __future__ import annotations
 
-import re
-from datetime import UTC, datetime
-from typing import Annotated, Any
+from datetime import datetime
+from typing import Any
 
 from ninja import Schema
-from pydantic import AfterValidator, BeforeValidator, Field, PlainValidator, WithJsonSchema
-from pydantic import ValidationInfo as _Info
-from pydantic_core import PydanticCustomError
+from pydantic import Field
 
-from labbook.science.errors import ScienceInputError
-from labbook.science.units import parse_quantity
+from labbook.core.schemas import AwareTime, quantity
 from labbook.tips.models import Conditioning, Tip
-
-# An unencoded "+01:00" in a query string (curl ...?at=...T09:00+01:00) arrives as " 01:00".
-_OFFSET_LOST_TO_A_SPACE = re.compile(r"(T\d{2}:\d{2}(?::\d{2}(?:\.\d+)?)?) (\d{2}:?\d{2})$")
-
-
-def _restore_plus(value: Any) -> Any:
-    if isinstance(value, str):
-        return _OFFSET_LOST_TO_A_SPACE.sub(r"\1+\2", value.strip())
-    return value
-
-
-def _aware_utc(value: datetime) -> datetime:
-    # A time without a zone could be the lab's, the chamber PC's or UTC; guessing would move a
-    # tip exchange by hours, so it is refused.
-    if value.tzinfo is None or value.utcoffset() is None:
-        raise PydanticCustomError(
-            "time_zone_needed", "needs a time zone: end it with Z (UTC) or an offset like +01:00"
-        )
-    return value.astimezone(UTC)
-
-
-AwareTime = Annotated[datetime, BeforeValidator(_restore_plus), AfterValidator(_aware_utc)]
-
-
-def quantity(unit: str, *, positive: bool = False) -> Any:
-    """A number in ``unit``, or a string with any unit pint converts to it."""
-
-    def read(value: Any, info: _Info) -> float:
-        name = info.field_name or "value"
-        try:
-            number = parse_quantity(value, unit, field=name)
-        except ScienceInputError as exc:
-            raise PydanticCustomError(
-                "quantity", "{message}", {"message": str(exc).removeprefix(f"{name}: ")}
-            ) from None
-        if positive and not number > 0:
-            raise PydanticCustomError("quantity", f"must be more than 0 {unit}, got {number:g}")
-        return number
-
-    return Annotated[
-        float,
-        PlainValidator(read),
-        WithJsonSchema(
-            {
-                "anyOf": [{"type": "number"}, {"type": "string"}],
-                "description": f"in {unit}, or a string with a unit",
-            }
-        ),
-    ]
-
 
 Frequency = quantity("Hz", positive=True)
 Stiffness = quantity("N/m", positive=True)

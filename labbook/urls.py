@@ -11,5 +11,6 @@ urlpatterns = [
     path("logout/", auth_views.LogoutView.as_view(), name="logout"),
     path("admin/", admin.site.urls),
     path("api/v1/", api.urls),
+    path("samples/", include("labbook.samples.urls")),
     path("", include("labbook.web.urls")),
 ]

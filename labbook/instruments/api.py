@@ -3,6 +3,7 @@ from __future__ import annotations
 import json
 from datetime import datetime
 
+from django.core.exceptions import RequestDataTooBig
 from django.shortcuts import get_object_or_404
 from django.utils import timezone
 from ninja import Router, Schema, Status
@@ -149,7 +150,11 @@ def post_readings(request):
     reason while the good rows are kept; the same channel and instant twice is stored once."""
     request.auth.require_write_any()
     try:
-        rows = json.loads(request.body or b"null")
+        body = request.body
+    except RequestDataTooBig:
+        raise HttpError(413, "the batch is too large: send fewer readings per request") from None
+    try:
+        rows = json.loads(body or b"null")
     except (ValueError, UnicodeDecodeError):
         raise HttpError(400, "the body is not JSON: send a list of {channel, t, value}") from None
     if not isinstance(rows, list):

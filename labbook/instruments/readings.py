@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from typing import Any
 
 from django.db import connection, transaction
@@ -19,6 +19,8 @@ from labbook.science.units import parse_many
 
 #: A batch larger than this is refused whole: it would hold a transaction for too long.
 MAX_BATCH = 50_000
+PLAUSIBLE_FUTURE = timedelta(days=1)
+EARLIEST_READING = datetime(1990, 1, 1, tzinfo=UTC)
 
 
 @dataclass
@@ -47,7 +49,16 @@ def parse_instant(value: Any) -> datetime:
         raise ValueError(f"t {value!r} is not an ISO 8601 instant") from None
     if instant.tzinfo is None:
         raise ValueError(f"t {value!r} has no time zone; add Z or an offset such as +01:00")
-    return instant.astimezone(UTC)
+    instant = instant.astimezone(UTC)
+    # A chamber PC whose clock was reset logs the year 2000 or a future date; such readings
+    # would silently land outside every plot, so they are refused with the reason.
+    if instant > datetime.now(UTC) + PLAUSIBLE_FUTURE:
+        raise ValueError(f"t {value!r} is in the future: check the logging computer's clock")
+    if instant < EARLIEST_READING:
+        raise ValueError(
+            f"t {value!r} is before {EARLIEST_READING:%Y}: check the logging computer's clock"
+        )
+    return instant
 
 
 def _channels(ids: Iterable[Any]) -> dict[int, tuple[int, str]]:

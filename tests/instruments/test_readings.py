@@ -234,3 +234,32 @@ def test_readings_land_in_their_years_partition_on_postgresql(gauge):
     assert ensure_partitions(2015, 2015) == ["instruments_reading_y2015"]
     assert partition_of(old) == "instruments_reading_y2015"  # moved out of the default
     assert Reading.objects.filter(channel=gauge).count() == 2
+
+
+def test_readings_from_a_reset_clock_are_refused(member, gauge, api_as):
+    body = (
+        api_as(member)
+        .post(
+            "/readings",
+            [
+                {"channel": gauge.pk, "t": "2000-01-01T00:00:00Z", "value": 1e-10},
+                {"channel": gauge.pk, "t": "1980-01-01T00:00:00Z", "value": 1e-10},
+                {"channel": gauge.pk, "t": "2999-01-01T00:00:00Z", "value": 1e-10},
+            ],
+        )
+        .json()
+    )
+    assert body["inserted"] == 1  # 2000 is plausible history; 1980 and 2999 are not
+    assert [r["index"] for r in body["rejected"]] == [1, 2]
+    assert "in the future" in body["rejected"][1]["error"]
+
+
+def test_an_oversized_body_is_a_json_413(member, gauge, api_as, settings):
+    settings.DATA_UPLOAD_MAX_MEMORY_SIZE = 1000
+    rows = [
+        {"channel": gauge.pk, "t": iso(T0 + timedelta(seconds=i)), "value": 1e-10}
+        for i in range(100)
+    ]
+    response = api_as(member).post("/readings", rows)
+    assert response.status_code == 413
+    assert "too large" in response.json()["detail"]

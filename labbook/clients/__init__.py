@@ -1,0 +1,1 @@
+"""Programs that run outside the server and talk to its API (the logger client)."""

@@ -1,4 +1,6 @@
-"""Pure computation for labbook: unit parsing, vacuum, ion beams, surfaces, deposition, thermometry.
+"""Pure computation for labbook: units, vacuum, ion beams, surfaces, deposition, thermometry,
+images (levelling, roughness, periodicity), spectra (Savitzky-Golay dI/dV), thumbnails and
+time series.
 
 Nothing in this package imports Django. Functions take and return plain floats (or numpy
 arrays where stated) in the unit their argument names carry (``pressure_mbar``,

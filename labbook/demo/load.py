@@ -21,9 +21,11 @@ from django.utils import timezone
 
 from labbook.demo import DemoContext
 from labbook.demo.instruments import CHANNELS, ensure_instrument, insert_readings
+from labbook.demo.logbook import load_logbook
 from labbook.demo.people import ensure_people
 from labbook.demo.readings import Scenario, bake_start_for, series, time_grid
 from labbook.demo.samples import load_samples
+from labbook.demo.tips import load_tips
 from labbook.instruments.models import Instrument, Reading
 
 
@@ -83,6 +85,8 @@ STEPS: list[tuple[str, Step]] = [
     ("instrument", ensure_instrument),
     ("readings", load_readings),
     ("samples", load_samples),
+    ("tips", load_tips),
+    ("logbook", load_logbook),
 ]
 
 

@@ -42,7 +42,7 @@ from labbook.demo import DemoContext
 from labbook.demo import samples as demo_samples
 from labbook.demo.readings import DAY, HOUR, Plan, Scenario, Transfer, plan, prep_pressure
 from labbook.instruments.actions import record_event
-from labbook.instruments.models import InstrumentEvent
+from labbook.instruments.models import Chamber, InstrumentEvent
 from labbook.logbook.actions import end_session, start_session, write_note
 from labbook.logbook.models import Note, Session
 from labbook.samples import queries as sample_queries
@@ -357,6 +357,7 @@ def _log_events(ctx: DemoContext, scenario: Scenario, story: Plan, events: _Even
             },
         )
     members = ("jonas", "leo", "amira", "greta")
+    load_lock = ctx.instrument.chambers.filter(kind=Chamber.Kind.LOAD_LOCK).first()
     for load in story.loads:
         if load.vent_s < since_s:
             continue
@@ -367,7 +368,8 @@ def _log_events(ctx: DemoContext, scenario: Scenario, story: Plan, events: _Even
             _at(load.pump_s),
             users[members[min(int(u * 4), 3)]],
             summary="load lock vented for a sample load",
-            details={"chamber": "load lock", "vented_with": "N2"},
+            details={"vented_with": "N2"},
+            chamber=load_lock,
         )
 
 

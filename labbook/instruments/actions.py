@@ -68,14 +68,18 @@ def record_event(
     end=None,
     summary: str = "",
     details: dict | None = None,
+    chamber: Chamber | None = None,
     actor,
 ) -> InstrumentEvent:
     """Log a bake-out, a cryogen transfer, a vent … on the instrument's timeline."""
     require_member(actor)
     if end is not None and end < start:
         raise ValidationError({"end": "the event ends before it starts"})
+    if chamber is not None and chamber.instrument_id != instrument.pk:
+        raise ValidationError({"chamber": f"{chamber} is not a chamber of {instrument}"})
     event = InstrumentEvent(
         instrument=instrument,
+        chamber=chamber,
         kind=kind,
         start=start,
         end=end,

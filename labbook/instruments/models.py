@@ -107,6 +107,14 @@ class InstrumentEvent(LabRecord):
         OTHER = "other"
 
     instrument = models.ForeignKey(Instrument, on_delete=models.PROTECT, related_name="events")
+    chamber = models.ForeignKey(
+        Chamber,
+        null=True,
+        blank=True,
+        on_delete=models.PROTECT,
+        related_name="events",
+        help_text="the chamber it happened in; empty when it concerns the whole instrument",
+    )
     kind = models.CharField(max_length=20, choices=Kind.choices)
     start = models.DateTimeField()
     end = models.DateTimeField(null=True, blank=True, help_text="open while it lasts")

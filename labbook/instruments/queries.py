@@ -7,7 +7,7 @@ from django.db import connection
 from django.db.models import Q, QuerySet
 from django.utils import timezone
 
-from labbook.instruments.models import Channel, Instrument, InstrumentEvent, Reading
+from labbook.instruments.models import Chamber, Channel, Instrument, InstrumentEvent, Reading
 
 
 def instruments_for(user) -> QuerySet[Instrument]:
@@ -182,7 +182,9 @@ def state_at(instrument: Instrument, at: datetime) -> InstrumentState:
         flags, found_range = _channel_flags(channel, value, age)
         channel_states.append(ChannelState(channel, t, value, age, flags, found_range))
 
-    events = list(events_between(instrument, at - AFTER_TRANSFER_WINDOW, at))
+    events = list(
+        events_between(instrument, at - AFTER_TRANSFER_WINDOW, at).select_related("chamber")
+    )
     flags = set()
     for event in events:
         under_way = event.start <= at and (event.end is None or event.end >= at)
@@ -191,7 +193,11 @@ def state_at(instrument: Instrument, at: datetime) -> InstrumentState:
         elif event.kind == InstrumentEvent.Kind.BAKEOUT and under_way:
             flags.add("bakeout_under_way")
         elif event.kind == InstrumentEvent.Kind.VENT and under_way:
-            flags.add("vented")
+            # Venting the load lock for a sample load leaves the microscope in vacuum.
+            in_load_lock = (
+                event.chamber is not None and event.chamber.kind == Chamber.Kind.LOAD_LOCK
+            )
+            flags.add("load_lock_vented" if in_load_lock else "vented")
     if any("above_uhv" in c.flags for c in channel_states):
         flags.add("pressure_above_uhv")
     return InstrumentState(instrument, at, channel_states, tuple(sorted(flags)), events)

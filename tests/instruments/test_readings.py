@@ -263,3 +263,35 @@ def test_an_oversized_body_is_a_json_413(member, gauge, api_as, settings):
     response = api_as(member).post("/readings", rows)
     assert response.status_code == 413
     assert "too large" in response.json()["detail"]
+
+
+def test_a_load_lock_vent_does_not_flag_the_microscope_as_vented(
+    member, manager, instrument, api_as
+):
+    from labbook.instruments.actions import add_chamber
+
+    load_lock = add_chamber(instrument, name="load lock", kind="load_lock", actor=manager)
+    record_event(
+        instrument,
+        kind="vent",
+        start=T0,
+        end=T0 + timedelta(minutes=20),
+        chamber=load_lock,
+        actor=member,
+    )
+    record_event(
+        instrument,
+        kind="vent",
+        start=T0 + timedelta(hours=5),
+        end=T0 + timedelta(hours=6),
+        actor=member,
+    )
+    api = api_as(member)
+    during_load = api.get(
+        f"/instruments/{instrument.pk}/state", at=iso(T0 + timedelta(minutes=5))
+    ).json()
+    assert during_load["flags"] == ["load_lock_vented"]
+    whole = api.get(
+        f"/instruments/{instrument.pk}/state", at=iso(T0 + timedelta(hours=5, minutes=5))
+    ).json()
+    assert whole["flags"] == ["vented"]

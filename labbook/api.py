@@ -107,6 +107,7 @@ def _database_unavailable(request, exc):
 
 def _mount_routers() -> None:
     from labbook.accounts.api import router as accounts_router
+    from labbook.datafiles.api import router as datafiles_router
     from labbook.instruments.api import router as instruments_router
     from labbook.logbook.api import router as logbook_router
     from labbook.samples.api import router as samples_router
@@ -116,6 +117,7 @@ def _mount_routers() -> None:
     api.add_router("/", samples_router)
     api.add_router("/", logbook_router)
     api.add_router("/", tips_router)
+    api.add_router("/", datafiles_router)
     api.add_router("/", accounts_router)
 
 

@@ -1,3 +1,154 @@
-"""Every state change of acquired files: storage, readers, ingestion, thumbnails and statistics:
-the one path views, API, tasks and commands call.
-"""
+"""Every change to acquired files: ingestion (upload, command, folder watch), processing
+results, corrections. The bytes are stored before anything else happens, so nothing a later
+step does can lose them."""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+from typing import Any, BinaryIO
+
+from django.core.exceptions import ValidationError
+from django.db import IntegrityError, transaction
+from django.utils import timezone
+
+from labbook.accounts.permissions import require_member
+from labbook.core.records import save_record
+from labbook.datafiles import lineage
+from labbook.datafiles.models import AcquiredFile, FileCoverage
+from labbook.datafiles.storage import safe_display_name, store_stream
+
+log = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True)
+class Ingested:
+    file: AcquiredFile
+    created: bool
+
+
+def _check_metadata(metadata: Any) -> dict[str, Any]:
+    if metadata in (None, ""):
+        return {}
+    if not isinstance(metadata, dict):
+        raise ValidationError({"metadata": "must be a JSON object of metadata fields"})
+    return metadata
+
+
+def ingest(
+    stream: BinaryIO,
+    name: str,
+    *,
+    metadata: dict[str, Any] | None = None,
+    actor,
+    source: str = "upload",
+    source_path: str = "",
+    instrument=None,
+) -> Ingested:
+    """Store the bytes under their SHA-256 and record a pending dataset; processing is queued
+    after commit. The same bytes again are the same dataset (``created`` is False)."""
+    require_member(actor)
+    given = _check_metadata(metadata)
+    stored = store_stream(stream)
+    existing = AcquiredFile.objects.filter(sha256=stored.sha256).first()
+    if existing is not None:
+        return Ingested(existing, created=False)
+    record = AcquiredFile(
+        sha256=stored.sha256,
+        size_bytes=stored.size_bytes,
+        storage_name=stored.storage_name,
+        original_name=safe_display_name(name),
+        source=source,
+        source_path=source_path[:1000],
+        uploaded_by=actor,
+        given_metadata=given,
+        instrument=instrument,
+    )
+    try:
+        with transaction.atomic():
+            save_record(record, actor)
+    except IntegrityError:
+        # The same bytes arrived twice at once; the other request recorded them.
+        return Ingested(AcquiredFile.objects.get(sha256=stored.sha256), created=False)
+    transaction.on_commit(lambda: queue_processing(record.pk))
+    return Ingested(record, created=True)
+
+
+def queue_processing(file_id: int) -> bool:
+    """Wake a worker for a pending file. A broker outage is logged; the sweep queues it later."""
+    from labbook.datafiles.tasks import process_file
+
+    AcquiredFile.objects.filter(pk=file_id).update(queued_at=timezone.now())
+    try:
+        process_file.delay(file_id)
+    except Exception:  # noqa: BLE001 - the row stays pending and the sweep retries it
+        log.warning(
+            "could not queue file %s; the sweep will queue it again", file_id, exc_info=True
+        )
+        return False
+    return True
+
+
+def store_lineage(record: AcquiredFile, found: lineage.Lineage) -> None:
+    """Write a resolved lineage onto the record (fields + coverage rows); caller saves."""
+    record.instrument = found.instrument
+    record.operator = found.operator
+    record.sample = found.sample
+    record.preparation = found.preparation
+    record.tip = found.tip
+    record.coverage_ml = found.coverage_ml
+    record.lineage = found.snapshot
+    record.lineage_resolved_at = timezone.now()
+
+
+def replace_coverages(record: AcquiredFile, coverages: list[dict[str, Any]]) -> None:
+    FileCoverage.objects.filter(file=record).delete()
+    FileCoverage.objects.bulk_create(
+        FileCoverage(
+            file=record,
+            material=c["material"],
+            coverage_ml=c["coverage_ml"],
+            uncertainty_ml=c.get("uncertainty_ml"),
+        )
+        for c in coverages
+    )
+
+
+CORRECTABLE = (
+    "instrument",
+    "sample",
+    "tip",
+    "operator",
+    "acquired_at",
+    "bias_v",
+    "setpoint_a",
+    "kind",
+)
+
+
+@transaction.atomic
+def correct_file(record: AcquiredFile, *, changes: dict[str, Any], actor) -> AcquiredFile:
+    """Correct what was logged about a dataset (the wrong tip, a missing sample) and resolve
+    its lineage again. The bytes never change; the history keeps the old and the new."""
+    require_member(actor)
+    unknown = set(changes) - set(CORRECTABLE)
+    if unknown:
+        raise ValidationError({name: "cannot be corrected here" for name in sorted(unknown)})
+    record = AcquiredFile.objects.select_for_update().get(pk=record.pk)
+    given = dict(record.given_metadata)
+    for name, value in changes.items():
+        given[name] = value.isoformat() if hasattr(value, "isoformat") else value
+    record.given_metadata = given
+    for name in ("acquired_at", "bias_v", "setpoint_a", "kind"):
+        if name in changes:
+            setattr(record, name, changes[name])
+    found = lineage.resolve(
+        acquired_at=record.acquired_at,
+        metadata=given,
+        instrument=record.instrument,
+        uploaded_by=record.uploaded_by,
+    )
+    store_lineage(record, found)
+    save_record(record, actor)
+    replace_coverages(record, found.coverages)
+    return record

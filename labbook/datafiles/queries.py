@@ -1,3 +1,109 @@
-"""Read-side queries of acquired files: storage, readers, ingestion, thumbnails and statistics;
-other apps read through these.
-"""
+"""Read-side queries of acquired files: search by the conditions a dataset was taken under,
+and the datasets of a tip, a sample or an instrument."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import datetime
+
+from django.db.models import Exists, OuterRef, Q, QuerySet
+
+from labbook.datafiles.models import AcquiredFile, FileCoverage
+
+
+@dataclass(frozen=True)
+class FileSearch:
+    """What a search asks for; every bound is inclusive, units as the names say."""
+
+    bias_min: float | None = None
+    bias_max: float | None = None
+    setpoint_min: float | None = None
+    setpoint_max: float | None = None
+    coverage_min: float | None = None
+    coverage_max: float | None = None
+    adsorbate: str | None = None
+    sample: int | None = None
+    tip: int | None = None
+    instrument: int | None = None
+    kind: str | None = None
+    status: str | None = None
+    since: datetime | None = None
+    until: datetime | None = None
+    q: str | None = None
+
+
+def files() -> QuerySet[AcquiredFile]:
+    return AcquiredFile.objects.filter(retired_at__isnull=True)
+
+
+def _between(name: str, low, high) -> Q:
+    condition = Q()
+    if low is not None:
+        condition &= Q(**{f"{name}__gte": low})
+    if high is not None:
+        condition &= Q(**{f"{name}__lte": high})
+    return condition
+
+
+def search(criteria: FileSearch) -> QuerySet[AcquiredFile]:
+    """Datasets matching every given criterion, newest first.
+
+    Coverage without an adsorbate compares the total nominal coverage stored on the file (the
+    composite (bias_v, coverage_ml) index serves bias + coverage); with an adsorbate it asks the
+    per-adsorbate rows ((material, coverage_ml) index).
+    """
+    found = files().filter(
+        _between("bias_v", criteria.bias_min, criteria.bias_max),
+        _between("setpoint_a", criteria.setpoint_min, criteria.setpoint_max),
+        _between("acquired_at", criteria.since, criteria.until),
+    )
+    wants_coverage = criteria.coverage_min is not None or criteria.coverage_max is not None
+    if criteria.adsorbate:
+        per_adsorbate = FileCoverage.objects.filter(
+            file=OuterRef("pk"),
+            material=criteria.adsorbate,
+            **(
+                {"coverage_ml__gte": criteria.coverage_min}
+                if criteria.coverage_min is not None
+                else {}
+            ),
+            **(
+                {"coverage_ml__lte": criteria.coverage_max}
+                if criteria.coverage_max is not None
+                else {}
+            ),
+        )
+        found = found.filter(Exists(per_adsorbate))
+    elif wants_coverage:
+        found = found.filter(_between("coverage_ml", criteria.coverage_min, criteria.coverage_max))
+    for name in ("sample", "tip", "instrument"):
+        value = getattr(criteria, name)
+        if value is not None:
+            found = found.filter(**{f"{name}_id": value})
+    if criteria.kind:
+        found = found.filter(kind=criteria.kind)
+    if criteria.status:
+        found = found.filter(status=criteria.status)
+    if criteria.q:
+        text = criteria.q.strip()
+        found = found.filter(
+            Q(original_name__icontains=text)
+            | Q(channel_name__icontains=text)
+            | Q(sample__name__icontains=text)
+        )
+    return found.order_by("-acquired_at", "-id")
+
+
+def files_of_tip(tip) -> QuerySet[AcquiredFile]:
+    return files().filter(tip=tip).order_by("-acquired_at", "-id")
+
+
+def files_of_sample(sample) -> QuerySet[AcquiredFile]:
+    return files().filter(sample=sample).order_by("-acquired_at", "-id")
+
+
+def pending_files(queued_before: datetime) -> QuerySet[AcquiredFile]:
+    """Files still waiting: never queued, or queued long enough ago that the message is lost."""
+    return AcquiredFile.objects.filter(status=AcquiredFile.Status.PENDING).filter(
+        Q(queued_at__isnull=True) | Q(queued_at__lt=queued_before)
+    )

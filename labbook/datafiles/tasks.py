@@ -1,3 +1,146 @@
-"""Celery tasks of acquired files: storage, readers, ingestion, thumbnails and statistics: they
-take ids, lock the row and are idempotent.
-"""
+"""Celery tasks of acquired files: they take ids, lock the row and are idempotent; the sweep
+queues again whatever is still pending (a broker outage or a killed worker)."""
+
+from __future__ import annotations
+
+import logging
+from datetime import datetime
+
+from celery import shared_task
+from django.core.files.base import ContentFile
+from django.core.files.storage import default_storage
+from django.db import OperationalError, transaction
+from django.db.models import F
+from django.utils import timezone
+
+from labbook.datafiles import lineage, processing
+from labbook.datafiles.actions import queue_processing, replace_coverages, store_lineage
+from labbook.datafiles.models import AcquiredFile
+from labbook.datafiles.readers import ReaderError, detect_format, read_file
+from labbook.datafiles.storage import read_stored, thumbnail_name
+
+log = logging.getLogger(__name__)
+
+HDF5_READ_TIMEOUT_S = 60
+
+
+@shared_task(
+    bind=True,
+    acks_late=True,
+    autoretry_for=(OperationalError, ConnectionError, TimeoutError),
+    retry_backoff=True,
+    retry_backoff_max=300,
+    max_retries=5,
+)
+def process_file(self, file_id: int) -> str:
+    """Read, measure and link one stored file. The row is locked while it is claimed, so two
+    deliveries of the same message never process it twice; a file already done is left alone.
+    An unreadable file keeps its bytes and gets the reader's error."""
+    record = AcquiredFile.objects.filter(pk=file_id).first()
+    if record is None or record.status != AcquiredFile.Status.PENDING:
+        return "missing" if record is None else record.status
+    # No lock is held while the file is read and measured: two deliveries of the same message
+    # may both do the work, and the first to write its result wins (the write below checks
+    # the row is still pending under a lock). Holding a lock across the work would cost a
+    # transaction per file for a case that is rare.
+
+    data = read_stored(record.storage_name)
+    # libhdf5 can loop forever or crash on a corrupt file, out of Python's reach: HDF5 files
+    # are read in a child process that is killed after a minute (about 40 ms per file more).
+    isolate = detect_format(record.original_name, data[:4096]) == "hdf5"
+    try:
+        parsed = read_file(
+            record.original_name,
+            data,
+            metadata=record.given_metadata,
+            timeout_s=HDF5_READ_TIMEOUT_S if isolate else None,
+        )
+        analysis = processing.analyse(parsed, record.given_metadata)
+    except (ReaderError, ValueError) as exc:
+        AcquiredFile.objects.filter(pk=file_id, status=AcquiredFile.Status.PENDING).update(
+            attempts=F("attempts") + 1,
+            status=AcquiredFile.Status.UNREADABLE,
+            error=str(exc)[:5000],
+            reader=getattr(exc, "reader", "") or "",
+            processed_at=timezone.now(),
+        )
+        return AcquiredFile.Status.UNREADABLE
+
+    thumb = ""
+    if analysis.thumbnail is not None:
+        thumb = thumbnail_name(record.sha256)
+        if not default_storage.exists(thumb):
+            default_storage.save(thumb, ContentFile(analysis.thumbnail))
+
+    metadata = _jsonable(analysis.metadata)
+    acquired_at = processing.acquired_at_of(analysis.metadata)
+    if acquired_at is None:
+        # No time in the file or the upload: its arrival is the best estimate, and is said so.
+        acquired_at = record.created_at
+        metadata["acquired_at_assumed"] = "arrival"
+    found = lineage.resolve(
+        acquired_at=acquired_at,
+        metadata=metadata,
+        instrument=record.instrument,
+        uploaded_by=record.uploaded_by,
+    )
+    with transaction.atomic():
+        current = AcquiredFile.objects.select_for_update().get(pk=file_id)
+        if current.status != AcquiredFile.Status.PENDING:
+            return current.status
+        current.attempts += 1
+        current.kind = analysis.kind
+        current.acquired_at = acquired_at
+        current.bias_v = _number(metadata.get("bias_v"))
+        current.setpoint_a = _number(metadata.get("setpoint_a"))
+        current.temperature_k = _number(metadata.get("temperature_k"))
+        current.channel_name = str(metadata.get("channel_name") or "")[:100]
+        current.metadata = metadata
+        current.raw_header = _jsonable(parsed.raw_header)
+        current.reader = parsed.reader[:50]
+        current.stats = _jsonable(analysis.stats)
+        current.thumbnail_name = thumb
+        current.status = AcquiredFile.Status.READY
+        current.error = "\n".join(parsed.warnings)[:5000]
+        current.processed_at = timezone.now()
+        store_lineage(current, found)
+        current._history_user = None
+        current.save()
+        replace_coverages(current, found.coverages)
+    return AcquiredFile.Status.READY
+
+
+def _number(value) -> float | None:
+    return float(value) if isinstance(value, int | float) and not isinstance(value, bool) else None
+
+
+def _jsonable(value):
+    """JSON-ready: datetimes as ISO text, numpy scalars as numbers (header values vary)."""
+    import math
+
+    import numpy as np
+
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, datetime):
+        return value.isoformat()
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    if isinstance(value, np.ndarray):
+        return _jsonable(value.tolist())
+    return value
+
+
+def sweep_pending_files(stale: datetime) -> int:
+    """Queue again every file still pending whose message is older than ``stale``."""
+    from labbook.datafiles.queries import pending_files
+
+    count = 0
+    for file_id in pending_files(stale).values_list("pk", flat=True)[:1000]:
+        queue_processing(file_id)
+        count += 1
+    return count

@@ -63,6 +63,16 @@ def open_session(instrument: Instrument, operator) -> Session | None:
     return sessions(instrument=instrument, operator=operator, open=True).first()
 
 
+def session_at(instrument: Instrument, at: datetime) -> Session | None:
+    """The session under way on ``instrument`` at ``at`` (the latest started, if several)."""
+    return (
+        sessions(instrument=instrument)
+        .filter(start__lte=at)
+        .filter(Q(end__isnull=True) | Q(end__gt=at))
+        .first()
+    )
+
+
 def notes(
     *,
     instrument: Instrument | None = None,

@@ -205,3 +205,35 @@ def step_as_template(step: PreparationStep) -> dict:
         if value not in (None, ""):
             template[name] = value
     return template
+
+
+def sample_on_stage(instrument, at: datetime) -> Sample | None:
+    """The sample on the instrument's microscope stage at ``at``: the latest move onto that
+    stage, provided the sample has not been moved anywhere since."""
+    from labbook.samples.models import Location
+
+    arrival = (
+        Transfer.objects.filter(
+            instrument=instrument,
+            location=Location.MICROSCOPE_STAGE,
+            at__lte=at,
+            retired_at__isnull=True,
+        )
+        .select_related("sample")
+        .order_by("-at")
+        .first()
+    )
+    if arrival is None:
+        return None
+    latest = location_at(arrival.sample, at)
+    if latest is None or latest.pk != arrival.pk:
+        return None
+    return arrival.sample
+
+
+def last_preparation_before(sample: Sample, at: datetime) -> Preparation | None:
+    return (
+        sample.preparations.filter(retired_at__isnull=True, started_at__lte=at)
+        .order_by("-started_at")
+        .first()
+    )

@@ -138,10 +138,9 @@ def record_conditioning(request, tip_id: int, payload: ConditioningIn):
 @paginate(LimitOffsetPagination, max_limit=MAX_PAGE)
 def tip_files(request, tip_id: int):
     """The datasets this tip produced, newest first."""
-    get_object_or_404(Tip, pk=tip_id)
-    # No datasets exist yet: the datafiles app fills this from its own queries (files whose
-    # stored tip link is this tip) when it lands. The endpoint and its shape are already real.
-    return []
+    from labbook.datafiles.queries import files_of_tip
+
+    return files_of_tip(get_object_or_404(Tip, pk=tip_id))
 
 
 @router.get("/instruments/{instrument_id}/tip", response=InstrumentTipOut)

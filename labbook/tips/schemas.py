@@ -151,9 +151,15 @@ class TipDetailOut(TipOut):
 
 
 class TipFileOut(Schema):
-    """A dataset the tip produced (the datafiles app fills these)."""
+    """A dataset the tip produced, with the links stored at ingestion."""
 
     id: int
     sha256: str
     kind: str
+    status: str
+    original_name: str
     acquired_at: datetime | None
+    bias_v: float | None
+    setpoint_a: float | None
+    sample: int | None = Field(None, alias="sample_id")
+    instrument: int | None = Field(None, alias="instrument_id")

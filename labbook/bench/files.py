@@ -167,12 +167,12 @@ def files() -> list[Figure]:
     sql_ms = []
     with connection.cursor() as cursor:
         for item in criteria:
-            sql, params = search(item)[:50].query.sql_with_params()
+            sql, params = search(item).values_list("id", flat=True)[:50].query.sql_with_params()
             started = time.perf_counter()
             cursor.execute(sql, params)
             cursor.fetchall()
             sql_ms.append((time.perf_counter() - started) * 1000)
-        sql, params = search(criteria[0])[:50].query.sql_with_params()
+        sql, params = search(criteria[0]).values_list("id", flat=True)[:50].query.sql_with_params()
         cursor.execute("EXPLAIN (ANALYZE, BUFFERS, COSTS OFF) " + sql, params)
         print("files: EXPLAIN of a search (bias and coverage ranges, newest first, 50 rows):")
         print("\n".join(row[0] for row in cursor.fetchall()), flush=True)

@@ -110,7 +110,25 @@ class AcquiredFile(LabRecord):
             # Search by bias and coverage, newest first (PERFORMANCE.md §5: a composite index
             # plus one on the sort key answers in about a millisecond).
             models.Index(fields=["bias_v", "coverage_ml"], name="file_bias_coverage"),
-            models.Index(fields=["-acquired_at", "-id"], name="file_newest_first"),
+            # Newest first, carrying the filtered columns: a search walks this index alone
+            # (an index-only scan) until it has a page of ids, then fetches those rows; the
+            # walk skips ~14,000 non-matching entries in about a millisecond where fetching
+            # each row to test it took 10-15 ms (1,000,000 datasets, bench "files").
+            models.Index(
+                fields=["-acquired_at", "-id"],
+                include=[
+                    "bias_v",
+                    "coverage_ml",
+                    "setpoint_a",
+                    "retired_at",
+                    "kind",
+                    "status",
+                    "instrument_id",
+                    "sample_id",
+                    "tip_id",
+                ],
+                name="file_newest_covering",
+            ),
             models.Index(fields=["setpoint_a"], name="file_setpoint"),
             models.Index(fields=["status", "queued_at"], name="file_status_queued"),
         ]

@@ -144,3 +144,35 @@ def test_healthz_counts_the_live_worker(real_worker, client):
     body = response.json()
     assert (body["broker"], body["workers"], body["status"]) == ("ok", "ok", "ok")
     assert body["worker_count"] >= 1
+
+
+@pytest.mark.worker
+@pytest.mark.django_db(transaction=True)
+def test_a_real_worker_processes_an_uploaded_file(real_worker, member, client):
+    """Upload through the API; the worker process reads, measures and thumbnails it."""
+    import io
+
+    import numpy as np
+
+    from labbook.accounts.actions import mint_token
+    from labbook.datafiles.models import AcquiredFile
+
+    buffer = io.BytesIO()
+    x = np.arange(64) / 64
+    np.save(buffer, np.tile(1e-10 * np.sin(2 * np.pi * 4 * x), (64, 1)).astype(np.float32))
+    upload = io.BytesIO(buffer.getvalue())
+    upload.name = "worker-grating.npy"
+    _, raw = mint_token(member)
+    response = client.post(
+        "/api/v1/files",
+        {"file": upload, "metadata": '{"kind": "topograph"}'},
+        headers={"Authorization": f"Bearer {raw}"},
+    )
+    assert response.status_code == 201, response.content
+    record = AcquiredFile.objects.get(pk=response.json()["id"])
+    deadline = time.monotonic() + 60
+    while record.status == "pending" and time.monotonic() < deadline:
+        time.sleep(0.2)
+        record.refresh_from_db()
+    assert record.status == "ready", record.error
+    assert record.thumbnail_name and record.stats["rq"] > 0

@@ -12,5 +12,8 @@ urlpatterns = [
     path("admin/", admin.site.urls),
     path("api/v1/", api.urls),
     path("samples/", include("labbook.samples.urls")),
+    path("instruments/", include("labbook.instruments.urls")),
+    path("tips/", include("labbook.tips.urls")),
+    path("logbook/", include("labbook.logbook.urls")),
     path("", include("labbook.web.urls")),
 ]

@@ -138,13 +138,10 @@ def mounted_message(mounted: actions.Mounted) -> str:
 
 
 def datasets_of(tip: Tip) -> list[Any]:
-    """The datasets acquired with this tip, newest first.
+    """The latest 50 datasets acquired with this tip, newest first (the tip audit's start)."""
+    from labbook.datafiles.queries import files_of_tip
 
-    Hook for the data-files app: when it lands, return its files here, e.g.
-    ``list(labbook.datafiles.queries.files_of_tip(tip)[:50])``, and the "Datasets" section of
-    the tip page lists them (template ``tips/_datasets.html``). Until then: none.
-    """
-    return []
+    return list(files_of_tip(tip).select_related("sample")[:50])
 
 
 _TRAILING_ZEROS = re.compile(r"^(-?\d+)\.(\d*?)0+(?=\D|$)")

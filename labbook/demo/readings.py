@@ -686,6 +686,11 @@ def prep_pressure(scenario: Scenario, t: np.ndarray) -> np.ndarray:
     return _round_significant(np.maximum(pressure, 1e-11), 3)
 
 
+def pressure_burst_s(scenario: Scenario) -> int:
+    """When the demo's one pressure burst happens: 75 days after the bake-out, 13:30 local."""
+    return _heating_end_s(scenario) + 75 * DAY + int(4.5 * 3600)
+
+
 def microscope_pressure(scenario: Scenario, t: np.ndarray) -> np.ndarray:
     """Microscope chamber ion gauge (N2-calibrated), mbar: the cold cryostat pumps, so the
     chamber reads ~3e-11 mbar cold and a few 1e-10 warm."""
@@ -702,6 +707,10 @@ def microscope_pressure(scenario: Scenario, t: np.ndarray) -> np.ndarray:
             _add_pulse(extra, t, e.start_s, e.end_s, 1.2e-10, 1 * MINUTE, 10 * MINUTE)
     if p.bake is not None:
         extra += 0.2 * _bake_rise(t, p.bake, 2.5e-5, 3e-7)
+    # Once in the year a burst: a cold finger's adsorbed gas lets go when a heater is switched
+    # on by mistake, a few 1e-9 mbar for ten minutes (invented; the plots must keep it visible).
+    burst = pressure_burst_s(scenario)
+    _add_pulse(extra, t, burst, burst + 4 * MINUTE, 6e-9, 20, 6 * MINUTE)
     pressure = (base + extra) * np.exp(0.03 * white(seed, "stm", t))
     return _round_significant(np.maximum(pressure, 1e-11), 3)
 

@@ -367,3 +367,18 @@ def test_sputter_cycles_and_sample_loads_show_in_the_pressures():
     for load in plan.loads:
         vented |= (t10 >= load.vent_s) & (t10 < load.pump_s)
     assert vented.any() and (load_lock[vented] > 500).all()
+
+
+def test_the_year_has_one_pressure_burst_in_the_microscope_chamber():
+    import numpy as np
+
+    from labbook.demo.readings import MINUTE, Scenario, microscope_pressure, pressure_burst_s
+
+    scenario = Scenario(bake_start_s=1_760_000_000)
+    burst = pressure_burst_s(scenario)
+    t = np.arange(burst - 3600, burst + 3600, 60, dtype=np.int64)
+    p = microscope_pressure(scenario, t)
+    before = p[t < burst - 10 * MINUTE]
+    assert before.max() < 1e-10  # quiet UHV before it
+    assert p.max() > 5e-9  # the burst: a few 1e-9 mbar
+    assert p[-1] < 2e-10  # and gone an hour later

@@ -20,6 +20,7 @@ from typing import Protocol
 from django.utils import timezone
 
 from labbook.demo import DemoContext
+from labbook.demo.datasets import load_datasets
 from labbook.demo.instruments import CHANNELS, ensure_instrument, insert_readings
 from labbook.demo.logbook import load_logbook
 from labbook.demo.people import ensure_people
@@ -87,6 +88,7 @@ STEPS: list[tuple[str, Step]] = [
     ("samples", load_samples),
     ("tips", load_tips),
     ("logbook", load_logbook),
+    ("datasets", load_datasets),
 ]
 
 

@@ -198,7 +198,13 @@ def state_at(instrument: Instrument, at: datetime) -> InstrumentState:
                 event.chamber is not None and event.chamber.kind == Chamber.Kind.LOAD_LOCK
             )
             flags.add("load_lock_vented" if in_load_lock else "vented")
-    if any("above_uhv" in c.flags for c in channel_states):
+    # A load lock between sample loads sits at 1e-8-1e-7 mbar by design: only the chambers
+    # where samples are prepared and measured raise the instrument's "above UHV" flag.
+    if any(
+        "above_uhv" in c.flags
+        and not (c.channel.chamber is not None and c.channel.chamber.kind == Chamber.Kind.LOAD_LOCK)
+        for c in channel_states
+    ):
         flags.add("pressure_above_uhv")
     return InstrumentState(instrument, at, channel_states, tuple(sorted(flags)), events)
 

@@ -7,7 +7,7 @@ from collections import defaultdict
 from dataclasses import dataclass, field
 from datetime import datetime
 
-from django.db.models import Prefetch, QuerySet
+from django.db.models import Prefetch, Q, QuerySet
 
 from labbook.samples.models import Preparation, PreparationStep, Recipe, Sample, Transfer
 
@@ -55,8 +55,8 @@ def current_recipes() -> QuerySet[Recipe]:
     )
 
 
-def _steps_until(sample: Sample, at: datetime) -> list[PreparationStep]:
-    return list(
+def _steps_until(sample: Sample, at: datetime) -> QuerySet[PreparationStep]:
+    return (
         PreparationStep.objects.filter(
             preparation__sample=sample,
             preparation__started_at__lte=at,
@@ -71,16 +71,23 @@ def surface_state(sample: Sample, at: datetime) -> SurfaceState:
     """The steps since the last cleaning step at or before ``at``, with the cumulative
     coverage per adsorbate, the gas exposures (corrected for the gauge) and the anneal time.
 
-    One query whatever the length of the sample's history: steps with their preparations.
+    Two queries whatever the length of the sample's history: the last cleaning step, then
+    only the steps after it (a year of preparations is not read to find one morning's).
     """
-    all_steps = _steps_until(sample, at)
-    last_clean = None
-    for index, step in enumerate(all_steps):
-        if step.cleans:
-            last_clean = index
-    since = all_steps if last_clean is None else all_steps[last_clean + 1 :]
-    cleaning_step = None if last_clean is None else all_steps[last_clean]
-    return _fold(sample, at, cleaning_step, since)
+    steps = _steps_until(sample, at)
+    cleaning_step = (
+        steps.filter(cleans=True)
+        .order_by("-preparation__started_at", "-preparation_id", "-position")
+        .first()
+    )
+    if cleaning_step is not None:
+        started = cleaning_step.preparation.started_at
+        steps = steps.filter(
+            Q(preparation__started_at__gt=started)
+            | Q(preparation__started_at=started, preparation_id__gt=cleaning_step.preparation_id)
+            | Q(preparation_id=cleaning_step.preparation_id, position__gt=cleaning_step.position)
+        )
+    return _fold(sample, at, cleaning_step, list(steps))
 
 
 def surface_states_after(

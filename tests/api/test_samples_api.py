@@ -671,8 +671,8 @@ def test_history_costs_the_same_queries_for_two_or_ten_preparations(
             assert api.get(f"/samples/{sample.pk}/history").status_code == 200
         counts[sample.pk] = len(captured)
     assert counts[short.pk] == counts[crystal.pk]
-    # token + groups, sample, preparations, their steps, transfers, surface state now.
-    with django_assert_max_num_queries(7):
+    # token + groups, sample, preparations, their steps, transfers, surface state now (2).
+    with django_assert_max_num_queries(8):
         api.get(f"/samples/{crystal.pk}/history")
 
 

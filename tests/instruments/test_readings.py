@@ -295,3 +295,24 @@ def test_a_load_lock_vent_does_not_flag_the_microscope_as_vented(
         f"/instruments/{instrument.pk}/state", at=iso(T0 + timedelta(hours=5, minutes=5))
     ).json()
     assert whole["flags"] == ["vented"]
+
+
+def test_a_load_lock_between_loads_does_not_raise_the_above_uhv_flag(
+    member, manager, instrument, api_as
+):
+    from labbook.instruments.actions import add_chamber
+
+    load_lock = add_chamber(instrument, name="load lock", kind="load_lock", actor=manager)
+    pirani = create_channel(
+        instrument,
+        name="load lock gauge",
+        quantity="pressure",
+        unit="mbar",
+        chamber=load_lock,
+        actor=manager,
+    )
+    api = api_as(member)
+    api.post("/readings", [{"channel": pirani.pk, "t": iso(T0), "value": 7e-8}])
+    state = api.get(f"/instruments/{instrument.pk}/state", at=iso(T0 + timedelta(minutes=1))).json()
+    assert state["channels"][0]["flags"] == ["above_uhv"]  # the channel says what it reads
+    assert state["flags"] == []  # but the microscope is not above UHV

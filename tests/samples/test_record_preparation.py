@@ -217,7 +217,7 @@ def test_surface_state_costs_a_fixed_number_of_queries(
             steps=CLEAN_CU,
             actor=member,
         )
-    with django_assert_max_num_queries(1):
+    with django_assert_max_num_queries(2):
         queries.surface_state(crystal, T0 + timedelta(days=10))
 
 

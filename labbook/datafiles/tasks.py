@@ -24,6 +24,11 @@ log = logging.getLogger(__name__)
 HDF5_READ_TIMEOUT_S = 60
 
 
+#: After this many failed attempts (not the file's fault: a bug, a full disk) the dataset is
+#: marked unreadable with the error, its bytes kept, so the sweep stops retrying it.
+MAX_ATTEMPTS = 5
+
+
 @shared_task(
     bind=True,
     acks_late=True,
@@ -33,6 +38,29 @@ HDF5_READ_TIMEOUT_S = 60
     max_retries=5,
 )
 def process_file(self, file_id: int) -> str:
+    """Read, measure and link one stored file (see ``_process``). A failure that is not the
+    file's (a bug, a full disk) is recorded on the row, never only in a log."""
+    try:
+        return _process(file_id)
+    except (OperationalError, ConnectionError, TimeoutError):
+        raise  # retried by Celery; the row stays pending
+    except Exception as exc:  # noqa: BLE001 - recorded on the row, then the sweep may retry
+        log.exception("processing file %s failed", file_id)
+        record = AcquiredFile.objects.filter(pk=file_id).first()
+        if record is None:
+            return "missing"
+        attempts = record.attempts + 1
+        update = {
+            "attempts": attempts,
+            "error": f"processing failed: {type(exc).__name__}: {exc}"[:5000],
+        }
+        if attempts >= MAX_ATTEMPTS:
+            update["status"] = AcquiredFile.Status.UNREADABLE
+        AcquiredFile.objects.filter(pk=file_id, status=AcquiredFile.Status.PENDING).update(**update)
+        return "failed"
+
+
+def _process(file_id: int) -> str:
     """Read, measure and link one stored file. The row is locked while it is claimed, so two
     deliveries of the same message never process it twice; a file already done is left alone.
     An unreadable file keeps its bytes and gets the reader's error."""

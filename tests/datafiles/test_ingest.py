@@ -296,3 +296,20 @@ def test_the_watcher_waits_for_complete_files_and_survives_a_restart(
     restarted = FolderWatch(folder, actor=member, instrument=instrument, settle_s=0)
     assert [p.name for p, _, _ in restarted.scan(now=100).created] == ["later.npy"]
     assert restarted.scan(now=200).created == [] and AcquiredFile.objects.count() == 2
+
+
+def test_a_processing_failure_is_recorded_on_the_row(upload, monkeypatch):
+    from labbook.datafiles import processing, tasks
+
+    def broken(parsed, given):
+        raise RuntimeError("the statistics module fell over")
+
+    monkeypatch.setattr(processing, "analyse", broken)
+    response = upload(npy_bytes(grating(16)), "x.npy", {"kind": "topograph"})
+    record = AcquiredFile.objects.get(pk=response.json()["id"])
+    assert record.status == "pending" and record.attempts == 1
+    assert record.error == "processing failed: RuntimeError: the statistics module fell over"
+    for _ in range(tasks.MAX_ATTEMPTS - 1):
+        tasks.process_file.apply(args=[record.pk])
+    record.refresh_from_db()
+    assert record.status == "unreadable" and record.attempts == tasks.MAX_ATTEMPTS

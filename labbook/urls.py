@@ -15,5 +15,6 @@ urlpatterns = [
     path("instruments/", include("labbook.instruments.urls")),
     path("tips/", include("labbook.tips.urls")),
     path("logbook/", include("labbook.logbook.urls")),
+    path("datasets/", include("labbook.datafiles.urls")),
     path("", include("labbook.web.urls")),
 ]

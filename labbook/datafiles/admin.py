@@ -1,2 +1,1 @@
-"""Admin (setup) pages of acquired files: storage, readers, ingestion, thumbnails and statistics.
-"""
+"""Admin (setup) pages of acquired files: storage, readers, ingestion, thumbnails and statistics."""

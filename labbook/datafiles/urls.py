@@ -1,0 +1,17 @@
+"""The dataset pages, under /datasets/."""
+
+from django.urls import path
+
+from labbook.datafiles import views
+
+app_name = "datafiles"
+
+urlpatterns = [
+    path("", views.search, name="search"),
+    path("upload/", views.upload, name="upload"),
+    # htmx parts of the upload page: a row that follows its file, the batch's progress.
+    path("upload/progress/", views.progress_part, name="progress"),
+    path("<int:pk>/row/", views.row_part, name="row"),
+    path("<int:pk>/", views.dataset, name="dataset"),
+    path("<int:pk>/correct/", views.correct, name="correct"),
+]

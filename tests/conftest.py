@@ -7,6 +7,31 @@ from django.test import Client
 
 from labbook.accounts.actions import mint_token, set_role
 
+_approx = pytest.approx
+
+
+def _approx_without_absolute_floor(expected, rel=None, abs=None, nan_ok=False):  # noqa: A002
+    """pytest.approx with no 1e-12 absolute tolerance unless a test asks for one.
+
+    labbook's quantities are SI: pressures of 1e-10 mbar, currents of 1e-11 A, heights of
+    1e-10 m. pytest's default absolute tolerance of 1e-12 would let such a comparison pass
+    whatever the relative tolerance says; here the relative tolerance is the check.
+    """
+    if abs is None:
+        abs = 0.0 if _nonzero(expected) else 1e-12  # noqa: A001
+        rel = 1e-6 if rel is None else rel  # pytest's own default, kept when abs is set
+    return _approx(expected, rel=rel, abs=abs, nan_ok=nan_ok)
+
+
+def _nonzero(expected) -> bool:
+    try:
+        return bool(expected != 0) and not hasattr(expected, "__len__")
+    except (TypeError, ValueError):
+        return False
+
+
+pytest.approx = _approx_without_absolute_floor
+
 
 @pytest.fixture
 def make_user(django_user_model):

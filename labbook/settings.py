@@ -201,6 +201,10 @@ CELERY_BEAT_SCHEDULE = {
         "task": "labbook.core.tasks.sweep_pending_work",
         "schedule": env_int("LABBOOK_SWEEP_SECONDS", 300),
     },
+    "verify-stored-files": {
+        "task": "labbook.datafiles.tasks.verify_stored_files",
+        "schedule": crontab(hour=2, minute=41, day_of_week="sun"),
+    },
     "prune-finished-jobs": {
         "task": "labbook.core.tasks.prune_finished_jobs",
         "schedule": crontab(hour=3, minute=17),

@@ -172,3 +172,38 @@ def sweep_pending_files(stale: datetime) -> int:
         queue_processing(file_id)
         count += 1
     return count
+
+
+@shared_task(acks_late=True)
+def verify_stored_files() -> dict:
+    """Periodic integrity check (beat): re-hash every stored file; problems go to the log and
+    to the lab managers by email. Nothing is deleted."""
+    from django.contrib.auth import get_user_model
+    from django.core.mail import send_mail
+
+    from labbook.datafiles.integrity import verify_all
+
+    report = verify_all()
+    if report.problems:
+        lines = [f"{p.state} #{p.file_id} {p.name} {p.sha256}" for p in report.problems]
+        log.error("stored files changed or missing:\n%s", "\n".join(lines))
+        managers = (
+            get_user_model()
+            .objects.filter(groups__name="managers", is_active=True)
+            .exclude(email="")
+        )
+        recipients = sorted(set(managers.values_list("email", flat=True)))
+        if recipients:
+            send_mail(
+                f"labbook: {len(report.problems)} stored file(s) changed or missing",
+                "These stored files no longer match the SHA-256 recorded at ingestion:\n\n"
+                + "\n".join(lines),
+                None,
+                recipients,
+                fail_silently=True,
+            )
+    return {
+        "checked": report.checked,
+        "changed": len(report.changed),
+        "missing": len(report.missing),
+    }

@@ -316,3 +316,38 @@ def test_a_processing_failure_is_recorded_on_the_row(upload, monkeypatch):
         tasks.process_file.apply(args=[record.pk])
     record.refresh_from_db()
     assert record.status == "unreadable" and record.attempts == tasks.MAX_ATTEMPTS
+
+
+def test_verify_files_reports_changed_and_missing_bytes_and_deletes_nothing(
+    upload, manager, settings
+):
+    from io import StringIO
+
+    from django.core import mail
+    from django.core.files.storage import default_storage
+    from django.core.management import call_command
+    from django.core.management.base import CommandError
+
+    from labbook.datafiles.tasks import verify_stored_files
+
+    manager.email = "mara@example.org"
+    manager.save()
+    ids = [upload(npy_bytes(grating(16, periods=p)), f"v{p}.npy").json()["id"] for p in (1, 2, 3)]
+    out = StringIO()
+    call_command("verify_files", stdout=out)
+    assert "3 files checked: 3 intact, 0 changed, 0 missing" in out.getvalue()
+
+    changed, missing = AcquiredFile.objects.get(pk=ids[0]), AcquiredFile.objects.get(pk=ids[1])
+    with default_storage.open(changed.storage_name, "wb") as handle:
+        handle.write(b"bit rot")
+    default_storage.delete(missing.storage_name)
+    out, err = StringIO(), StringIO()
+    with pytest.raises(CommandError, match="2 stored file"):
+        call_command("verify_files", stdout=out, stderr=err)
+    assert "1 intact, 1 changed, 1 missing" in out.getvalue()
+    assert (
+        f"changed  #{changed.pk}" in err.getvalue() and f"missing  #{missing.pk}" in err.getvalue()
+    )
+    assert AcquiredFile.objects.count() == 3  # nothing deleted
+    assert verify_stored_files.apply().get() == {"checked": 3, "changed": 1, "missing": 1}
+    assert mail.outbox and mail.outbox[0].to == ["mara@example.org"]

@@ -18,6 +18,7 @@ from labbook.datafiles import actions, queries
 from labbook.datafiles.models import AcquiredFile
 from labbook.datafiles.storage import UploadTooLarge, open_stored
 from labbook.instruments.models import Instrument
+from labbook.instruments.queries import instrument_named
 
 router = Router(tags=["files"])
 
@@ -113,8 +114,7 @@ def _instrument_for(request, metadata: dict[str, Any]) -> Instrument | None:
     named = metadata.get("instrument")
     instrument = None
     if named not in (None, ""):
-        lookup = {"pk": int(named)} if str(named).isdigit() else {"name": str(named)}
-        instrument = Instrument.objects.filter(**lookup).first()
+        instrument = instrument_named(named)
         if instrument is None:
             raise HttpError(422, f"metadata.instrument: no instrument {named!r}")
     elif request.auth.instrument_id is not None:

@@ -222,3 +222,10 @@ def readings_between(
     if limit is not None:
         rows = rows[:limit]
     return list(rows)
+
+
+def instrument_named(value: str | int) -> Instrument | None:
+    """An instrument by id (an int or a digit string) or by its name; None if there is none."""
+    text = str(value).strip()
+    lookup = {"pk": int(text)} if text.isdigit() else {"name": text}
+    return Instrument.objects.filter(**lookup).first()

@@ -4,7 +4,7 @@ from django.contrib.auth import get_user_model
 from django.core.management.base import BaseCommand, CommandError
 
 from labbook.accounts.actions import mint_token
-from labbook.instruments.models import Instrument
+from labbook.instruments.queries import instrument_named
 
 
 class Command(BaseCommand):
@@ -26,8 +26,7 @@ class Command(BaseCommand):
             raise CommandError(f"no user named {user!r}") from None
         scope = None
         if instrument:
-            lookup = {"pk": int(instrument)} if instrument.isdigit() else {"name": instrument}
-            scope = Instrument.objects.filter(**lookup).first()
+            scope = instrument_named(instrument)
             if scope is None:
                 raise CommandError(f"no instrument {instrument!r}")
         token, raw = mint_token(account, label=label, instrument=scope, read_only=read_only)

@@ -7,7 +7,7 @@ from django.contrib.auth import get_user_model
 from django.core.management.base import BaseCommand, CommandError
 
 from labbook.datafiles.folders import ingest_paths
-from labbook.instruments.models import Instrument
+from labbook.instruments.queries import instrument_named
 
 
 def resolve_common(user: str, instrument: str | None):
@@ -16,8 +16,7 @@ def resolve_common(user: str, instrument: str | None):
         raise CommandError(f"no user named {user!r}")
     scope = None
     if instrument:
-        lookup = {"pk": int(instrument)} if instrument.isdigit() else {"name": instrument}
-        scope = Instrument.objects.filter(**lookup).first()
+        scope = instrument_named(instrument)
         if scope is None:
             raise CommandError(f"no instrument {instrument!r}")
     return account, scope

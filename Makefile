@@ -8,7 +8,7 @@ PORT   ?= 8000
 # Tests keep their secret key and scratch files apart from the demo's data.
 TEST_DATA_DIR ?= $(CURDIR)/var/test
 
-.PHONY: venv demo serve test lint bench clean
+.PHONY: venv browser demo serve test lint bench load faults clean
 
 venv: $(STAMP)
 
@@ -33,13 +33,26 @@ lint: venv
 	$(BIN)/ruff check .
 	$(BIN)/python manage.py makemigrations --check --dry-run
 
+# The browser tests drive Debian's chromium (never a downloaded browser); this installs it
+# where it is missing and the machine allows (see scripts/install-browser.sh).
+browser:
+	bash scripts/install-browser.sh
+
 # Uses DATABASE_URL and REDIS_URL / CELERY_BROKER_URL when they are set (CI sets both).
-test: venv lint
+test: venv lint browser
 	LABBOOK_DATA_DIR=$(TEST_DATA_DIR) CELERY_TASK_DEFAULT_QUEUE=labbook-test-$$$$ \
 		$(BIN)/python -m pytest $(PYTEST_ARGS)
 
 bench: venv
 	$(BIN)/python -m labbook.bench
+
+# 20 clients for 2 minutes against gunicorn + PostgreSQL + Redis + two workers (loopback only).
+load: venv
+	$(BIN)/python -m labbook.bench.load
+
+# Scripted fault scenarios (Redis stopped, worker killed, PostgreSQL restarted, disk full…).
+faults: venv
+	$(BIN)/python -m labbook.bench.faults
 
 clean:
 	rm -rf $(VENV) var .pytest_cache .ruff_cache

@@ -107,9 +107,11 @@ def _database_unavailable(request, exc):
 
 def _mount_routers() -> None:
     from labbook.accounts.api import router as accounts_router
+    from labbook.cryo.api import router as cryo_router
     from labbook.datafiles.api import router as datafiles_router
     from labbook.instruments.api import router as instruments_router
     from labbook.logbook.api import router as logbook_router
+    from labbook.provenance.api import router as provenance_router
     from labbook.samples.api import router as samples_router
     from labbook.tips.api import router as tips_router
 
@@ -119,6 +121,8 @@ def _mount_routers() -> None:
     api.add_router("/", tips_router)
     api.add_router("/", datafiles_router)
     api.add_router("/", accounts_router)
+    api.add_router("/", provenance_router)
+    api.add_router("/", cryo_router)
 
 
 _mount_routers()

@@ -16,5 +16,8 @@ urlpatterns = [
     path("tips/", include("labbook.tips.urls")),
     path("logbook/", include("labbook.logbook.urls")),
     path("datasets/", include("labbook.datafiles.urls")),
+    path("provenance/", include("labbook.provenance.urls")),
+    path("changes/", include("labbook.provenance.audit_urls")),
+    path("cryostats/", include("labbook.cryo.urls")),
     path("", include("labbook.web.urls")),
 ]

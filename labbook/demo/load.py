@@ -20,6 +20,7 @@ from typing import Protocol
 from django.utils import timezone
 
 from labbook.demo import DemoContext
+from labbook.demo.cryo import load_cryostats
 from labbook.demo.datasets import load_datasets
 from labbook.demo.instruments import CHANNELS, ensure_instrument, insert_readings
 from labbook.demo.logbook import load_logbook
@@ -89,6 +90,7 @@ STEPS: list[tuple[str, Step]] = [
     ("tips", load_tips),
     ("logbook", load_logbook),
     ("datasets", load_datasets),
+    ("cryostats", load_cryostats),
 ]
 
 

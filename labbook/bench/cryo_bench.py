@@ -1,0 +1,1 @@
+"""Benchmarks of the cryo app (registered on import by labbook.bench.suites)."""

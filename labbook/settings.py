@@ -209,6 +209,10 @@ CELERY_BEAT_SCHEDULE = {
         "task": "labbook.core.tasks.prune_finished_jobs",
         "schedule": crontab(hour=3, minute=17),
     },
+    "check-cryostat-alerts": {
+        "task": "labbook.cryo.tasks.check_cryostat_alerts",
+        "schedule": 15 * 60,
+    },
 }
 # Pending work older than this is handed to a worker again by the sweep.
 LABBOOK_SWEEP_AFTER_SECONDS = env_int("LABBOOK_SWEEP_AFTER_SECONDS", 120)

@@ -21,7 +21,11 @@ The story (FIELD.md §3 and §4, REFERENCES.md §8):
   week when samples are loaded, then pumped down again;
 * the bath cryostat: LN2 shield filled every working day, LHe bath on Monday, Wednesday and
   Friday (LN2 first), both back to ~95 %, between 9:00 and 17:00 local time; the helium level
-  meter is read every 30 min because its heater adds boil-off; the STM head stays at
+  meter is read every 30 min because its heater adds boil-off. On the lab's one cryogen
+  holiday (a Wednesday, :func:`cryo_holiday`) nobody fills: the helium fill moves to the
+  Thursday. For one week (:func:`raised_boiloff_week`) the isolation vacuum is degraded and
+  the baths boil off faster (LHe ×1.45, LN2 ×1.3) until it is re-pumped on the Friday
+  morning (FIELD.md §3: re-pump when the boil-off is up by more than 30 %); the STM head stays at
   4.4–4.6 K and warms by a fraction of a kelvin for about an hour after each helium transfer;
 * once, the system is baked: the cryostat is let run dry and emptied, the chambers are baked
   for 48 h with the cryostat warm (~295 K) and empty, the prep pressure rises into 1e-5 mbar
@@ -43,8 +47,11 @@ MINUTE = 60
 HOUR = 3600
 DAY = 86400
 
-# Gas from one litre of boiled-off liquid helium at room temperature (FIELD.md §3: He ≈ 750 L).
-HE_GAS_L_PER_LIQUID_L = 750.0
+# Gas at 15 °C from one litre of liquid helium lost: (ρ_l − ρ_v)/ρ_gas = 637 L, not the 737 L
+# expansion ratio, because the vapour left behind fills the vacated volume (REFERENCES.md §1).
+HE_GAS_L_PER_LIQUID_L = 637.0
+# The demo lab's recovery line returns most but not all of it (invented: leaks, purges).
+HE_RECOVERED_FRACTION = 0.88
 
 # The history the plan starts from before the first instant asked for. It must span the
 # longest stretch without a helium fill (the bake-out: ~12 days), so that the level at the
@@ -262,11 +269,32 @@ def _heating_end_s(scenario: Scenario) -> int:
     return _local_seconds(day, 9.0, ZoneInfo(scenario.time_zone))
 
 
+#: Boil-off factors in the week of the degraded isolation vacuum (LHe, LN2). LHe at ×1.45 is
+#: well above the 30 % a lab acts on; a 95 % fill still lasts the two days between fills.
+RAISED_BOILOFF = {"LHe": 1.45, "LN2": 1.3}
+
+
+def cryo_holiday(scenario: Scenario) -> date:
+    """The lab's cryogen holiday: the first Wednesday ten weeks after the bake-out Monday (an
+    invented institute day). Midweek, so a 12 L bath bridges it with the Thursday fill."""
+    return _bake_day(scenario) + timedelta(days=72)
+
+
+def raised_boiloff_week(scenario: Scenario) -> tuple[date, date]:
+    """(Monday, Friday) of the week with the degraded isolation vacuum: sixteen weeks after the
+    bake-out Monday. The boil-off is raised from the Monday fill until the Friday re-pump."""
+    monday = _bake_day(scenario) + timedelta(days=112)
+    return monday, monday + timedelta(days=4)
+
+
 @lru_cache(maxsize=32)
 def _plan_days(scenario: Scenario, first: int, last: int) -> Plan:
     zone = ZoneInfo(scenario.time_zone)
     bake_day = _bake_day(scenario)
     bake_ordinal = bake_day.toordinal()
+    holiday = cryo_holiday(scenario)
+    raised_from, raised_until = raised_boiloff_week(scenario)
+    raised = (_local_seconds(raised_from, 0.0, zone), _local_seconds(raised_until, 0.0, zone))
     cryo_events: list[tuple[str, str, int, int, float, float]] = []  # cryogen, kind, ...
     episodes: list[Episode] = []
     loads: list[SampleLoad] = []
@@ -275,6 +303,9 @@ def _plan_days(scenario: Scenario, first: int, last: int) -> Plan:
         day = date.fromordinal(ordinal)
         rel = ordinal - bake_ordinal
         working = day.weekday() < 5
+        # No cryogen transfer on the holiday; the helium fill moves to the next day.
+        fills_cryogen = working and day != holiday
+        lhe_day = day.weekday() in (0, 2, 4) or day == holiday + timedelta(days=1)
         u = _day_rng(scenario.seed, _TOPIC_CRYO, ordinal).random(8)
         # Nitrogen first, then helium (FIELD.md §3): the shield is topped up every working
         # day, mostly in the morning.
@@ -290,7 +321,7 @@ def _plan_days(scenario: Scenario, first: int, last: int) -> Plan:
             # First nitrogen from warm: much boils off cooling the shield, so it ends lower.
             start = _local_seconds(day, 10.0, zone)
             cryo_events.append(("LN2", "fill", start, start + 90 * MINUTE, 80.0, 0.45))
-        elif working and rel not in _NO_LN2_FILL:
+        elif fills_cryogen and rel not in _NO_LN2_FILL:
             target = 93.0 + 4.0 * u[3]
             cryo_events.append(("LN2", "fill", ln2_start, ln2_end, target, 0.1 + 0.1 * u[4]))
         if rel == 7:
@@ -299,7 +330,7 @@ def _plan_days(scenario: Scenario, first: int, last: int) -> Plan:
             start = ln2_end + 60 * MINUTE
             lhe_first_fill_s = start
             cryo_events.append(("LHe", "fill", start, start + 75 * MINUTE, 70.0, 0.45))
-        elif working and day.weekday() in (0, 2, 4) and rel not in _NO_LHE_FILL:
+        elif fills_cryogen and lhe_day and rel not in _NO_LHE_FILL:
             start = ln2_end + int((20 + 25 * u[5]) * MINUTE)
             end = start + int((25 + 15 * u[6]) * MINUTE)
             # Top-ups lose 10–30 % of the liquid to the siphon and flash gas (FIELD.md §3).
@@ -321,7 +352,14 @@ def _plan_days(scenario: Scenario, first: int, last: int) -> Plan:
         events = sorted((e for e in cryo_events if e[0] == cryogen), key=lambda e: e[2])
         if not events:
             continue
-        transfers, level = _run_level(scenario.seed, cryogen, events, capacity, rate_l)
+        transfers, level = _run_level(
+            scenario.seed,
+            cryogen,
+            events,
+            capacity,
+            rate_l,
+            raised=(*raised, RAISED_BOILOFF[cryogen]),
+        )
         if cryogen == "LHe":
             result.lhe, result.lhe_level = transfers, level
         else:
@@ -332,17 +370,26 @@ def _plan_days(scenario: Scenario, first: int, last: int) -> Plan:
 
 
 def _run_level(
-    seed: int, cryogen: str, events: list[tuple], capacity_l: float, rate_l_per_day: float
+    seed: int,
+    cryogen: str,
+    events: list[tuple],
+    capacity_l: float,
+    rate_l_per_day: float,
+    *,
+    raised: tuple[int, int, float] | None = None,
 ) -> tuple[list[Transfer], _Level]:
     """Walk the events in order: each fill goes to its target level whatever the level before
     (so the story does not depend on where the plan started), boil-off is linear in between
-    (FIELD.md §3) with a few per cent of variation from one interval to the next."""
+    (FIELD.md §3) with a few per cent of variation from one interval to the next. ``raised``
+    (start_s, end_s, factor) multiplies the boil-off after the events that start in it."""
     n = len(events)
     start = np.array([e[2] for e in events], dtype=np.int64)
     end = np.array([e[3] for e in events], dtype=np.int64)
     after = np.array([e[4] for e in events], dtype=np.float64)
     jitter = 1.0 + 0.04 * white(seed, cryogen + "/rate", start)
     rate = rate_l_per_day / capacity_l * 100.0 / DAY * jitter
+    if raised is not None:
+        rate = np.where((start >= raised[0]) & (start < raised[1]), rate * raised[2], rate)
     before = np.empty(n)
     level = 50.0  # arbitrary: the lead-in makes it irrelevant to the instants asked for
     transfers = []
@@ -614,14 +661,15 @@ def recovery_flow(scenario: Scenario, t: np.ndarray) -> np.ndarray:
     lv = p.lhe_level
     i = np.clip(np.searchsorted(lv.start, t, side="right") - 1, 0, None)
     boiloff_l_per_day = lv.rate_pct_per_s[i] * DAY / 100.0 * scenario.lhe_capacity_l
-    flow = boiloff_l_per_day * HE_GAS_L_PER_LIQUID_L / 1440.0
+    flow = boiloff_l_per_day * HE_GAS_L_PER_LIQUID_L * HE_RECOVERED_FRACTION / 1440.0
     flow = flow * (1.0 + 0.03 * smooth(seed, "flow/weather", t, DAY))
     flow = np.where(lv.at(t) > 0.0, flow, 0.0)
     for tr in p.lhe:
         if tr.kind != "fill":
             continue
         minutes = max((tr.end_s - tr.start_s) / MINUTE, 1.0)
-        flash = tr.taken_l * tr.loss_fraction * HE_GAS_L_PER_LIQUID_L / minutes
+        flash = tr.taken_l * tr.loss_fraction * HE_GAS_L_PER_LIQUID_L * HE_RECOVERED_FRACTION
+        flash = flash / minutes
         _add_pulse(flow, t, tr.start_s, tr.end_s, flash, 3 * MINUTE, 15 * MINUTE)
     flow = flow + 0.03 * white(seed, "flow", t)
     return np.round(np.clip(flow, 0.0, None), 2)

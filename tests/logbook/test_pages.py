@@ -55,7 +55,8 @@ def titles(response) -> list[str]:
 
 @pytest.fixture
 def t0():
-    return (timezone.now() - timedelta(days=2)).replace(second=0, microsecond=0)
+    # Mid-morning two days ago, so the day's entries never straddle midnight whenever this runs.
+    return (timezone.now() - timedelta(days=2)).replace(hour=9, minute=0, second=0, microsecond=0)
 
 
 @pytest.fixture

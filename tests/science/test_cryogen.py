@@ -241,13 +241,12 @@ def test_rate_and_every_refill_from_a_noisy_log_with_outliers():
         assert segment.rate_l_per_day == pytest.approx(rate, rel=0.02)
         assert 0 < segment.rate_uncertainty_l_per_day < 0.02 * rate
     assert analysis.rate_l_per_day == pytest.approx(rates[-1], rel=0.02)
-    # the last reading is 3 days after the fill: 12 − 3.3 × 3 = 2.1 L (less one reading)
-    expected_now = 12.0 - rates[-1] * (t[-1] - analysis.segments[-1].t_start) / 86_400
-    expected_now -= rates[-1] * (analysis.segments[-1].t_start - analysis.refills[-1].t_end) * 0
+    # the last reading is 3 days after the fill: 12 − 3.3 × 3 = 2.1 L, from the fitted line
     assert analysis.level_now_l == pytest.approx(analysis.segments[-1].level_at_end_l, abs=1e-12)
     assert analysis.level_now_l == pytest.approx(12.0 - 3.3 * 3.0, abs=0.05)
     assert analysis.t_now == t[-1]
-    assert expected_now < 12.0
+    # the fitted segment starts an hour after the refill (the bath settles)
+    assert analysis.segments[-1].t_start - analysis.refills[-1].t_end == pytest.approx(3600, abs=60)
 
 
 def test_noise_spikes_larger_than_the_threshold_are_no_refills():

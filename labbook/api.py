@@ -6,9 +6,11 @@ Errors always answer ``{"detail": "<what went wrong>", "errors": [{"field", "mes
 
 from __future__ import annotations
 
+import errno
+
 from django.core.exceptions import ObjectDoesNotExist
 from django.core.exceptions import ValidationError as DjangoValidationError
-from django.db import DatabaseError, IntegrityError
+from django.db import DatabaseError, DataError, IntegrityError
 from ninja import NinjaAPI
 from ninja.errors import AuthenticationError, HttpError
 from ninja.errors import ValidationError as NinjaValidationError
@@ -97,12 +99,36 @@ def _conflict(request, exc):
     return _error(request, 409, "this conflicts with an existing record")
 
 
+@api.exception_handler(OverflowError)
+@api.exception_handler(DataError)
+def _out_of_range(request, exc):
+    # An id or number beyond what the database stores (e.g. past 64 bits) is bad input, not an
+    # outage: SQLite raises OverflowError, PostgreSQL DataError.
+    return _error(
+        request,
+        422,
+        "the request has a value out of range for the database (ids and counts fit in 64 bits)",
+    )
+
+
 @api.exception_handler(DatabaseError)
 def _database_unavailable(request, exc):
     # A restarting database must give a clear, retryable answer, never a half-written record.
     response = _error(request, 503, "the database is unavailable; retry shortly")
     response["Retry-After"] = "5"
     return response
+
+
+@api.exception_handler(OSError)
+def _volume_full(request, exc: OSError):
+    # A full files volume must say so; any other OS error stays a 500.
+    if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+        return _error(
+            request,
+            507,
+            "the files volume is full: nothing was stored; free space and send the file again",
+        )
+    raise exc
 
 
 def _mount_routers() -> None:

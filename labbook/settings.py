@@ -175,6 +175,23 @@ X_FRAME_OPTIONS = "DENY"
 SECURE_CONTENT_TYPE_NOSNIFF = True
 SECURE_REFERRER_POLICY = "same-origin"
 
+# --- Cache ----------------------------------------------------------------------------------
+# Failed-login counts and rendered plots live here. Per process by default; production sets
+# LABBOOK_CACHE_URL (e.g. redis://redis:6379/1, a database apart from the broker's) so that
+# every web worker shares one count of failed logins.
+LABBOOK_CACHE_URL = env_str("LABBOOK_CACHE_URL")
+CACHES = {
+    "default": (
+        {
+            "BACKEND": "django.core.cache.backends.redis.RedisCache",
+            "LOCATION": LABBOOK_CACHE_URL,
+            "KEY_PREFIX": "labbook",
+        }
+        if LABBOOK_CACHE_URL
+        else {"BACKEND": "django.core.cache.backends.locmem.LocMemCache"}
+    )
+}
+
 # --- Celery ---------------------------------------------------------------------------------
 CELERY_BROKER_URL = env_str("CELERY_BROKER_URL") or env_str("REDIS_URL")
 CELERY_RESULT_BACKEND = env_str("CELERY_RESULT_BACKEND") or (

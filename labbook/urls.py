@@ -2,12 +2,13 @@ from django.contrib import admin
 from django.contrib.auth import views as auth_views
 from django.urls import include, path
 
+from labbook.accounts.views import ThrottledLoginView
 from labbook.api import api
 from labbook.core.views import healthz
 
 urlpatterns = [
     path("healthz", healthz, name="healthz"),
-    path("login/", auth_views.LoginView.as_view(), name="login"),
+    path("login/", ThrottledLoginView.as_view(), name="login"),
     path("logout/", auth_views.LogoutView.as_view(), name="logout"),
     path("admin/", admin.site.urls),
     path("api/v1/", api.urls),

@@ -20,9 +20,12 @@ log = logging.getLogger(__name__)
 pending_sweepers: dict[str, Callable[[datetime], int]] = {}
 
 
+# The outcome is kept on the Job row, so no result is stored: publishing one would subscribe to
+# the result backend and stall the sender for ~19 s whenever Redis is down.
 @shared_task(
     bind=True,
     acks_late=True,
+    ignore_result=True,
     autoretry_for=(ConnectionError, TimeoutError),
     retry_backoff=True,
     retry_backoff_max=300,

@@ -109,11 +109,14 @@ class Recipe(LabRecord):
 class DepositionSource(LabRecord):
     """An evaporator, crucible or doser on an instrument, whose rate is calibrated."""
 
-    class Kind(models.TextChoices):
+    class SourceKind(models.TextChoices):
         KNUDSEN_CELL = "knudsen_cell", "Knudsen cell / crucible"
         ELECTRON_BEAM = "electron_beam", "e-beam evaporator"
         SUBLIMATION = "sublimation", "sublimation source"
         OTHER = "other"
+
+    # Named apart from the other record kinds so each has its own OpenAPI component.
+    Kind = SourceKind
 
     instrument = models.ForeignKey(
         "instruments.Instrument", on_delete=models.PROTECT, related_name="deposition_sources"

@@ -26,6 +26,7 @@ from labbook.science.constants import AVOGADRO_PER_MOL, BOLTZMANN_J_PER_K, ELEME
 from labbook.science.errors import (
     ScienceInputError,
     UnknownNameError,
+    finite_result,
     require_finite,
     require_non_negative,
     require_positive,
@@ -45,7 +46,9 @@ def coverage_ml(rate_ml_per_min: float, duration_s: float) -> float:
     """Nominal coverage (ML) deposited at a constant rate (ML/min) for a duration (s)."""
     rate = require_non_negative(rate_ml_per_min, "rate_ml_per_min")
     duration = require_non_negative(duration_s, "duration_s")
-    return rate * duration / SECONDS_PER_MINUTE
+    return finite_result(
+        rate * duration / SECONDS_PER_MINUTE, "coverage", "rate_ml_per_min", "duration_s"
+    )
 
 
 # --- QCM ------------------------------------------------------------------------------------

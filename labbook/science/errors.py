@@ -64,6 +64,16 @@ def require_finite(value: object, name: str) -> float:
     return number
 
 
+def finite_result(value: float, name: str, *inputs: str) -> float:
+    """Return a computed ``value``; raise when finite inputs overflowed it to infinity."""
+    if not math.isfinite(value):
+        raise OutOfRangeError(
+            f"{name} is beyond the range of a float ({value}) for the given " + ", ".join(inputs),
+            argument=inputs[0] if inputs else None,
+        )
+    return value
+
+
 def require_positive(value: object, name: str) -> float:
     """Return ``value`` as a float; raise unless it is finite and > 0."""
     number = require_finite(value, name)

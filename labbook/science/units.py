@@ -132,7 +132,18 @@ def _normalise_number_syntax(text: str) -> str:
     return _TIMES_TEN.sub(lambda m: "e" + m.group("exp"), text)
 
 
+# Longer than any quantity typed by hand; pint's parser recurses on long expressions.
+MAX_QUANTITY_CHARS = 200
+
+
 def _quantity_from_string(text: str, target: pint.Unit, *, field: str) -> pint.Quantity:
+    if len(text) > MAX_QUANTITY_CHARS:
+        raise QuantityError(
+            f"{field}: the value is {len(text)} characters long; a quantity has at most "
+            f"{MAX_QUANTITY_CHARS}",
+            field=field,
+            expected=str(target),
+        )
     if not text.isprintable():
         raise QuantityError(
             f"{field}: {text!r} contains control characters", field=field, expected=str(target)
@@ -237,7 +248,15 @@ def parse_quantity(value: Any, unit: str, *, field: str) -> float:
         quantity = _quantity_from_string(value, target, field=field)
         shown = repr(value)
     elif isinstance(value, Real) and not isinstance(value, bool):
-        quantity = ureg.Quantity(float(value), target)
+        try:
+            number = float(value)
+        except OverflowError:
+            raise QuantityError(
+                f"{field}: {value!r} is beyond the range of a number",
+                field=field,
+                expected=str(target),
+            ) from None
+        quantity = ureg.Quantity(number, target)
         shown = repr(value)
     else:
         raise QuantityError(

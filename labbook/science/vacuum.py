@@ -30,6 +30,7 @@ from labbook.science.errors import (
     OutOfRangeError,
     ScienceInputError,
     UnknownNameError,
+    finite_result,
     require_non_negative,
     require_positive,
 )
@@ -295,7 +296,9 @@ def exposure_langmuir(pressure_mbar: float, duration_s: float) -> float:
     """
     pressure = require_non_negative(pressure_mbar, "pressure_mbar")
     duration = require_non_negative(duration_s, "duration_s")
-    return pressure * duration / LANGMUIR_MBAR_S
+    return finite_result(
+        pressure * duration / LANGMUIR_MBAR_S, "exposure", "pressure_mbar", "duration_s"
+    )
 
 
 def hertz_knudsen_flux(

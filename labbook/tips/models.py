@@ -163,12 +163,15 @@ class Conditioning(LabRecord):
     ``params_raw`` what was typed ("2 nm"), so nothing the operator wrote is lost.
     """
 
-    class Kind(models.TextChoices):
+    class ConditioningKind(models.TextChoices):
         FIELD_EMISSION = "field_emission", "field emission"
         PULSE = "pulse", "voltage pulse"
         INDENTATION = "indentation", "indentation"
         FUNCTIONALISATION = "functionalisation", "functionalisation"
         OTHER = "other", "other"
+
+    # Named apart from the other record kinds so each has its own OpenAPI component.
+    Kind = ConditioningKind
 
     tip = models.ForeignKey(Tip, on_delete=models.PROTECT, related_name="conditioning")
     instrument = models.ForeignKey(

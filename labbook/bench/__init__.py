@@ -8,10 +8,17 @@ test database on whatever DATABASE_URL points at, never on the lab's own data.
 
 from __future__ import annotations
 
+import json
+import os
+import platform
+import socket
 import statistics
+import sys
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from dataclasses import asdict, dataclass
+from datetime import UTC, datetime
+from pathlib import Path
 
 
 @dataclass(frozen=True)
@@ -37,8 +44,60 @@ class Figure:
             checks.append(self.value <= self.goal_value)
         return all(checks) if checks else None
 
+    @property
+    def goal(self) -> str | None:
+        """The goal as text (``≤ 2×, ≤ 100 ms``), None where the issues set none."""
+        goals = []
+        if self.goal_ratio is not None:
+            goals.append(f"≤ {self.goal_ratio:g}×")
+        if self.goal_value is not None:
+            goals.append(f"≤ {self.goal_value:g} {self.unit}")
+        return ", ".join(goals) or None
+
     def as_dict(self) -> dict:
-        return {**asdict(self), "ratio": self.ratio, "met": self.met}
+        ratio = self.ratio
+        return {
+            **asdict(self),
+            "floor_label": self.floor_name,
+            # JSON has no infinity: a floor of zero (nothing to compare with) is written null.
+            "ratio": ratio if ratio != float("inf") else None,
+            "goal": self.goal,
+            "met": self.met,
+            "passed": self.met,
+        }
+
+
+def machine() -> dict:
+    """Where and when figures were measured: they only compare within one machine and run."""
+    try:
+        load = list(os.getloadavg())
+    except OSError:  # pragma: no cover - platforms without getloadavg
+        load = None
+    return {
+        "host": socket.gethostname(),
+        "platform": platform.platform(),
+        "python": sys.version.split()[0],
+        "cpus": os.cpu_count(),
+        "load_average": load,
+        "measured_at": datetime.now(UTC).isoformat(timespec="seconds"),
+    }
+
+
+def write_figures(path: Path, figures: Iterable[Figure], **extra) -> Path:
+    """Write figures with the machine and time as JSON (atomically: a reader never sees half)."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    figures = list(figures)
+    document = {
+        "machine": machine(),
+        **extra,
+        "figures": [figure.as_dict() for figure in figures],
+        "passed": not any(figure.met is False for figure in figures),
+    }
+    partial = path.with_name(path.name + ".partial")
+    partial.write_text(json.dumps(document, indent=2, default=str) + "\n")
+    partial.replace(path)
+    return path
 
 
 BenchFunction = Callable[[], list[Figure]]

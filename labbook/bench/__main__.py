@@ -1,7 +1,6 @@
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import sys
 from pathlib import Path
@@ -11,7 +10,9 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="python -m labbook.bench", description=__doc__)
     parser.add_argument("names", nargs="*", help="benchmarks to run (default: all)")
     parser.add_argument(
-        "--output", help="JSON file for the figures (default: var/bench-results.json)"
+        "--output",
+        help="JSON file for the figures (default: var/bench/latest.json, also copied to "
+        "var/bench-results.json)",
     )
     args = parser.parse_args(argv)
 
@@ -25,6 +26,7 @@ def main(argv: list[str] | None = None) -> int:
     from labbook.bench import (
         registry,
         suites,  # noqa: F401 - registers the benchmarks
+        write_figures,
     )
 
     names = args.names or list(registry)
@@ -40,12 +42,7 @@ def main(argv: list[str] | None = None) -> int:
             for figure in registry[name]():
                 figures.append(figure)
                 verdict = "" if figure.met is None else ("  ok" if figure.met else "  ABOVE GOAL")
-                goals = []
-                if figure.goal_ratio is not None:
-                    goals.append(f"≤ {figure.goal_ratio:g}×")
-                if figure.goal_value is not None:
-                    goals.append(f"≤ {figure.goal_value:g} {figure.unit}")
-                goal = f" (goal {', '.join(goals)})" if goals else ""
+                goal = f" (goal {figure.goal})" if figure.goal else ""
                 print(
                     f"{figure.name:<52} {figure.ratio:7.2f}× floor{goal}  "
                     f"{figure.value:10.4g} {figure.unit} vs {figure.floor:.4g} {figure.unit} "
@@ -55,16 +52,19 @@ def main(argv: list[str] | None = None) -> int:
     finally:
         teardown_databases(databases, verbosity=0)
 
-    output = Path(args.output or Path(settings.DATA_DIR) / "bench-results.json")
-    output.write_text(
-        json.dumps(
-            {
-                "database": settings.DATABASES["default"]["ENGINE"].rsplit(".", 1)[-1],
-                "figures": [figure.as_dict() for figure in figures],
-            },
-            indent=2,
-        )
+    database = settings.DATABASES["default"]["ENGINE"].rsplit(".", 1)[-1]
+    outputs = (
+        [Path(args.output)]
+        if args.output
+        else [
+            Path(settings.DATA_DIR) / "bench" / "latest.json",
+            # The path README and DEVELOPERS name; kept so their instructions stay right.
+            Path(settings.DATA_DIR) / "bench-results.json",
+        ]
     )
+    for output in outputs:
+        write_figures(output, figures, database=database, benchmarks=names)
+    output = ", ".join(map(str, outputs))
     print(f"figures written to {output}")
     return 1 if any(figure.met is False for figure in figures) else 0
 

@@ -32,6 +32,7 @@ from labbook.datafiles.forms import SORTS, CorrectionForm, SearchForm, UploadFor
 from labbook.datafiles.models import AcquiredFile
 from labbook.datafiles.storage import UploadTooLarge, safe_display_name
 from labbook.instruments import queries as instrument_queries
+from labbook.provenance import views as provenance_views
 from labbook.samples.forms import lab_zone
 from labbook.samples.views import duration_text, with_uncertainty
 from labbook.tips.models import Conditioning
@@ -415,6 +416,7 @@ def dataset_context(record: AcquiredFile, form: CorrectionForm) -> dict[str, Any
         "tip_given": given.get("tip") not in (None, ""),
         "page_instrument": record.instrument,
         "note_tip": record.tip,
+        "provenance": provenance_views.panel_context(record),
     }
 
 

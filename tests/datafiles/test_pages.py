@@ -440,9 +440,11 @@ def test_the_dataset_page_shows_stats_lineage_and_the_instrument_snapshot(
     assert "microscope ion gauge" in lineage and "3.0×10⁻¹¹\u00a0mbar" in lineage
     assert "3\u00a0min before" in lineage
     assert "Nothing flagged then" in lineage
-    # Exports are to come: the section is there, with no link yet.
+    # The exports: the PROV document and the crate of this dataset.
     exports = section(page, "exports")
-    assert "PROV-JSON" in exports and "<a " not in exports
+    assert "PROV-JSON" in exports
+    assert f'href="/api/v1/files/{topograph.pk}/provenance.prov.json"' in exports
+    assert f'href="/api/v1/files/{topograph.pk}/crate.zip"' in exports
 
 
 def test_lock_in_and_force_sensor_settings_show_in_their_units(member, ingest):

@@ -54,6 +54,7 @@ INSTALLED_APPS = [
     "whitenoise.runserver_nostatic",
     "django.contrib.staticfiles",
     "simple_history",
+    "ninja",  # its Swagger UI files, served from our static files (no CDN)
     "labbook.core",
     "labbook.accounts",
     "labbook.instruments",

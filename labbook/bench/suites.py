@@ -10,6 +10,7 @@ from labbook.accounts.auth import BearerToken
 from labbook.bench import Figure, benchmark, p50_ms
 from labbook.bench import cryo_bench as _cryo  # noqa: F401 - registers its benchmark
 from labbook.bench import files as _files  # noqa: F401 - registers its benchmark
+from labbook.bench import plots_bench as _plots  # noqa: F401 - registers its benchmark
 from labbook.bench import provenance_bench as _provenance  # noqa: F401 - registers its benchmark
 from labbook.bench import readings as _readings  # noqa: F401 - registers its benchmark
 from labbook.bench import science_bench as _science  # noqa: F401 - registers its benchmark

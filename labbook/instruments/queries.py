@@ -1,7 +1,11 @@
 from __future__ import annotations
 
+import json
+import math
+from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import datetime, timedelta
+from datetime import UTC, datetime, timedelta
+from typing import NamedTuple
 
 from django.db import connection
 from django.db.models import Q, QuerySet
@@ -229,3 +233,174 @@ def instrument_named(value: str | int) -> Instrument | None:
     text = str(value).strip()
     lookup = {"pk": int(text)} if text.isdigit() else {"name": text}
     return Instrument.objects.filter(**lookup).first()
+
+
+def latest_reading_time(channel: Channel, at: datetime) -> datetime | None:
+    """When ``channel`` last logged at or before ``at``: one probe on (channel_id, t)."""
+    return (
+        Reading.objects.filter(channel=channel, t__lte=at)
+        .order_by("-t")
+        .values_list("t", flat=True)
+        .first()
+    )
+
+
+def readings_upto(channel: Channel, since: datetime, until: datetime, cap: int) -> int:
+    """How many readings ``channel`` has in [since, until], counted no further than ``cap``:
+    enough to choose between raw points and an envelope without counting a year of rows."""
+    return (
+        Reading.objects.filter(channel=channel, t__gte=since, t__lte=until)
+        .values_list("t")[:cap]
+        .count()
+    )
+
+
+# --- the min/max envelope of readings, reduced in the database ---------------------------------
+
+
+class EnvelopeBucket(NamedTuple):
+    """One stretch of the grid that holds readings: its first and last reading's instant, the
+    smallest and largest value in it, and how many readings it holds."""
+
+    index: int
+    first_t: datetime
+    last_t: datetime
+    low: float
+    high: float
+    count: int
+
+
+@dataclass(frozen=True)
+class ReadingEnvelope:
+    """Per channel, the buckets of the grid ``origin + k * width`` (k = 0, 1, …) that hold
+    readings, oldest first. Bucket k holds the readings with
+    ``origin + k·width <= t < origin + (k+1)·width``; empty buckets are left out, so a logger
+    outage stays a gap."""
+
+    origin: datetime
+    width: timedelta
+    buckets: int
+    channels: dict[int, list[EnvelopeBucket]]
+
+
+#: Finite doubles only: a gauge switched off may log NaN or ±inf on PostgreSQL (NaN sorts above
+#: every number there), and one such value would become a bucket's maximum.
+_FINITE = "value BETWEEN -1.7976931348623157e308 AND 1.7976931348623157e308"
+
+# One aggregate per channel and bucket over that bucket's stretch of the covering key
+# (channel_id, t) INCLUDE (value): an index-only range scan each, in key order, so nothing is
+# sorted or hashed. A GROUP BY date_bin(width, t, origin) gives the same rows, but the planner
+# cannot know that date_bin keeps t's order: it sorts every row of the window first (spilling
+# to disk at the stock 4 MB work_mem) and took 270 ms for a year of one-minute readings where
+# this takes 150 ms (labbook/bench/plots_bench.py). The constant bounds on t prune the yearly
+# partitions at plan time; the per-bucket bounds prune them again per bucket at run time.
+_ENVELOPE_SQL_POSTGRESQL = f"""
+/* reading_envelope */
+SELECT c.id, g.k, a.first_t, a.last_t, a.low, a.high, a.n
+FROM unnest(%(channels)s::bigint[]) AS c(id)
+CROSS JOIN generate_series(0, %(last_bucket)s) AS g(k)
+CROSS JOIN LATERAL (
+    SELECT min(r.t) AS first_t, max(r.t) AS last_t,
+           min(r.value) AS low, max(r.value) AS high, count(*) AS n
+    FROM instruments_reading r
+    WHERE r.channel_id = c.id
+      AND r.t >= %(origin)s::timestamptz + g.k * %(width)s::interval
+      AND r.t < %(origin)s::timestamptz + (g.k + 1) * %(width)s::interval
+      AND r.t >= %(since)s AND r.t <= %(until)s AND r.{_FINITE}
+) AS a
+WHERE a.n > 0
+ORDER BY c.id, g.k
+"""  # noqa: S608 - constants only; every value is a parameter
+
+# Django keeps SQLite datetimes as naive-UTC text; strftime('%s') gives whole epoch seconds,
+# and since origin and width are whole seconds, floor((floor(t) - origin) / width) is the same
+# bucket as floor((t - origin) / width) (floor(floor(x) / n) = floor(x / n) for whole n).
+_ENVELOPE_SQL_SQLITE = f"""
+/* reading_envelope */
+SELECT channel_id,
+       (CAST(strftime('%%s', t) AS INTEGER) - %(origin_s)s) / %(width_s)s AS bucket,
+       min(t), max(t), min(value), max(value), count(*)
+FROM instruments_reading
+WHERE channel_id IN (SELECT value FROM json_each(%(channels_json)s))
+  AND t >= %(since)s AND t <= %(until)s AND {_FINITE}
+GROUP BY channel_id, bucket
+ORDER BY channel_id, bucket
+"""  # noqa: S608 - constants only; every value is a parameter
+
+
+def envelope_grid(since: datetime, until: datetime, buckets: int) -> tuple[datetime, timedelta]:
+    """(origin, width) of the grid :func:`reading_envelope` reduces [since, until] onto.
+
+    Both are whole seconds, so the database buckets with integer arithmetic and both backends
+    agree to the reading: origin is ``since`` rounded down to the second, and the width is the
+    smallest whole number of seconds for which ``buckets`` buckets reach past ``until``, so a
+    reading at ``until`` falls in the last bucket, never in one more.
+    """
+    if isinstance(buckets, bool) or not isinstance(buckets, int) or buckets < 1:
+        raise ValueError(f"buckets must be a whole number of at least 1, got {buckets!r}")
+    if since.tzinfo is None or until.tzinfo is None:
+        raise ValueError("since and until need a time zone")
+    if until < since:
+        raise ValueError(f"until {until.isoformat()} is before since {since.isoformat()}")
+    origin_s = math.floor(since.timestamp())
+    span_s = math.ceil(until.timestamp()) - origin_s
+    width_s = span_s // buckets + 1
+    return datetime.fromtimestamp(origin_s, tz=UTC), timedelta(seconds=width_s)
+
+
+def reading_envelope(
+    channel_ids: Sequence[int], since: datetime, until: datetime, buckets: int
+) -> ReadingEnvelope:
+    """The smallest and largest reading of each channel in each of about ``buckets`` equal
+    stretches of [since, until], computed by the database in one query.
+
+    This is :func:`labbook.science.timeseries.minmax_buckets` done where the rows are: a year
+    of one-minute readings (half a million rows a channel) comes back as a thousand or two
+    rows instead of travelling to Python. On PostgreSQL the rows come from index-only scans of
+    the covering primary key (channel_id, t) INCLUDE (value), one range a bucket, pruned to
+    the years the window touches; on SQLite a GROUP BY on the integer division of the epoch
+    second, over a search of the same composite key. Non-finite values are left out, as
+    ``minmax_buckets`` leaves them out.
+    """
+    origin, width = envelope_grid(since, until, buckets)
+    ids = sorted({int(i) for i in channel_ids})
+    found: dict[int, list[EnvelopeBucket]] = {i: [] for i in ids}
+    if not ids:
+        return ReadingEnvelope(origin, width, buckets, found)
+    with connection.cursor() as cursor:
+        if connection.vendor == "postgresql":
+            cursor.execute(
+                _ENVELOPE_SQL_POSTGRESQL,
+                {
+                    "channels": ids,
+                    "last_bucket": (until - origin) // width,
+                    "origin": origin,
+                    "width": width,
+                    "since": since,
+                    "until": until,
+                },
+            )
+            rows = cursor.fetchall()
+        else:
+            adapt = connection.ops.adapt_datetimefield_value
+            cursor.execute(
+                _ENVELOPE_SQL_SQLITE,
+                {
+                    "origin_s": int(origin.timestamp()),
+                    "width_s": int(width.total_seconds()),
+                    "channels_json": json.dumps(ids),
+                    "since": adapt(since),
+                    "until": adapt(until),
+                },
+            )
+            rows = [
+                (cid, bucket, _sqlite_instant(first), _sqlite_instant(last), low, high, n)
+                for cid, bucket, first, last, low, high, n in cursor.fetchall()
+            ]
+    for cid, bucket, first, last, low, high, n in rows:
+        found[cid].append(EnvelopeBucket(int(bucket), first, last, low, high, n))
+    return ReadingEnvelope(origin, width, buckets, found)
+
+
+def _sqlite_instant(text: str) -> datetime:
+    return datetime.fromisoformat(text).replace(tzinfo=UTC)

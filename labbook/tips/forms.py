@@ -62,6 +62,8 @@ class MountForm(ActionErrorsMixin, forms.Form):
     action_fields = {"end": "start"}
 
     def __init__(self, *args: Any, user, **kwargs: Any) -> None:
+        # The tip page also holds the conditioning form, which has an instrument field too.
+        kwargs.setdefault("auto_id", "mount-%s")
         super().__init__(*args, **kwargs)
         self.fields["instrument"].queryset = instruments_for(user)
 

@@ -11,9 +11,12 @@ load at the chamber PC), and a year of readings never travels to the browser.
 * **Reducing.** The readings are reduced with :func:`labbook.science.timeseries.minmax_buckets`
   to two buckets per pixel column and drawn as a band from each bucket's minimum to its
   maximum, so a pressure burst of a single reading still reaches its true height.
-* **Fetching.** Readings come from ``instruments.queries.readings_between`` a week at a time, so
-  a year of a 10-second channel (3 million readings) never sits in memory as Python objects
-  at once; each week is reduced into the same bucket grid as the whole window.
+* **Fetching.** A window of up to :data:`ENVELOPE_ABOVE` readings is fetched as (t, value)
+  pairs (``instruments.queries.readings_between``) and reduced here, so a short window keeps
+  its raw points. A longer one is reduced by the database
+  (``instruments.queries.reading_envelope``: one query over the covering primary key) and
+  only the buckets travel: a year of 500,000 readings is ~1,300 rows, drawn in ~0.3 s where
+  fetching every row and reducing it in Python took ~4-6 s (``labbook/bench/plots_bench.py``).
 * **Caching.** A PNG is kept in Django's cache under a key made of the channel, the window,
   the size, the time of the channel's latest reading in the window, and a fingerprint of the
   instrument's events in it. A new reading, a new or corrected event or a renamed channel makes
@@ -42,8 +45,10 @@ from labbook.instruments.queries import (
     DEFAULT_STALE_AFTER,
     STALE_FACTOR,
     events_between,
-    latest_values,
+    latest_reading_time,
+    reading_envelope,
     readings_between,
+    readings_upto,
 )
 from labbook.science.timeseries import minmax_buckets
 from labbook.web.templatetags.labbook_format import display_unit
@@ -75,15 +80,17 @@ _QUANTITY_WORDS = {
     Channel.Quantity.CRYOGEN_LEVEL: "level",
 }
 
-#: Readings are fetched a week at a time (about 60 000 rows of a 10-second channel).
-FETCH_CHUNK = timedelta(days=7)
+#: Above this many readings in a window the database reduces them (module docstring). Below
+#: it the raw pairs cost little to fetch (20,000 in ~30 ms, from PERFORMANCE.md §6's 8,640 in
+#: 13 ms: an estimate) and a window with fewer readings than buckets keeps its raw points.
+ENVELOPE_ABOVE = 20_000
 #: Windows longer than this are refused: a decade of 10-second readings is 30 million rows.
 MAX_SPAN = timedelta(days=731)
 #: Plots whose window reaches into the last hour are kept this long; older windows longer.
 LIVE_TIMEOUT_S = 15 * 60
 PAST_TIMEOUT_S = 24 * 3600
 #: Bump when the drawing changes, so no image drawn the old way is served again.
-STYLE_VERSION = 1
+STYLE_VERSION = 2
 
 #: Frame around the axes in CSS pixels (left, right, top, bottom); room for tick labels.
 MARGINS_PX = (64, 14, 24, 40)
@@ -212,33 +219,28 @@ def _arrays(rows: list[tuple[datetime, float]]) -> tuple[np.ndarray, np.ndarray]
 def reduced_readings(
     channel: Channel, since: datetime, until: datetime, buckets: int
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
-    """(t, low, high, readings) of ``channel`` in [since, until] on a grid of ``buckets``,
-    fetched a chunk at a time (module docstring). Chunks are whole runs of buckets, so
-    reducing them one by one gives the same buckets as reducing the window at once."""
-    lo, hi = since.timestamp(), until.timestamp()
-    width = (hi - lo) / buckets
-    per_chunk = max(1, math.ceil(FETCH_CHUNK.total_seconds() / width))
-    parts: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
-    count = 0
-    for first in range(0, buckets, per_chunk):
-        last = min(first + per_chunk, buckets)
-        start = lo + first * width
-        end = hi if last == buckets else lo + last * width
-        rows = readings_between(
-            channel, datetime.fromtimestamp(start, tz=UTC), datetime.fromtimestamp(end, tz=UTC)
-        )
-        t, v = _arrays(rows)
-        del rows
-        if last < buckets:  # an instant on the seam belongs to the next chunk
-            inside = t < end
-            t, v = t[inside], v[inside]
-        count += t.size
-        parts.append(minmax_buckets(t, v, last - first, start=start, end=end))
-    if not parts:
-        empty = np.empty(0)
-        return empty, empty, empty, 0
-    t, low, high = (np.concatenate(column) for column in zip(*parts, strict=True))
-    return t, low, high, count
+    """(t, low, high, readings) of ``channel`` in [since, until] on about ``buckets`` buckets:
+    reduced here from the raw readings for a short window, by the database for a long one
+    (module docstring). Either way a bucket's ``t`` is the middle of its first and last
+    reading, and a window with no more readings than buckets keeps every point."""
+    if readings_upto(channel, since, until, ENVELOPE_ABOVE + 1) > ENVELOPE_ABOVE:
+        return enveloped_readings(channel, since, until, buckets)
+    t, v = _arrays(readings_between(channel, since, until))
+    t_mid, low, high = minmax_buckets(t, v, buckets, start=since.timestamp(), end=until.timestamp())
+    return t_mid, low, high, int(np.count_nonzero(np.isfinite(v)))
+
+
+def enveloped_readings(
+    channel: Channel, since: datetime, until: datetime, buckets: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, int]:
+    """(t, low, high, readings) from the database's min/max envelope of the window."""
+    rows = reading_envelope([channel.pk], since, until, buckets).channels[channel.pk]
+    n = len(rows)
+    first = np.fromiter((r.first_t.timestamp() for r in rows), dtype=float, count=n)
+    last = np.fromiter((r.last_t.timestamp() for r in rows), dtype=float, count=n)
+    low = np.fromiter((r.low for r in rows), dtype=float, count=n)
+    high = np.fromiter((r.high for r in rows), dtype=float, count=n)
+    return (first + last) / 2.0, low, high, sum(r.count for r in rows)
 
 
 def channel_series(channel: Channel, since: datetime, until: datetime, buckets: int) -> Series:
@@ -258,7 +260,8 @@ def channel_series(channel: Channel, since: datetime, until: datetime, buckets: 
         low=low,
         high=high,
         readings=count,
-        gap_s=max(_gap_seconds(channel), 2 * (until - since).total_seconds() / buckets),
+        # Two buckets apart is still joined; +1 s for the envelope grid's whole-second width.
+        gap_s=max(_gap_seconds(channel), 2 * ((until - since).total_seconds() / buckets + 1)),
         events=events,
     )
 
@@ -525,8 +528,10 @@ def _events_fingerprint(channel: Channel, since: datetime, until: datetime) -> s
 
 def plot_cache_key(channel: Channel, since: datetime, until: datetime, size: PlotSize) -> str:
     """The key the PNG is cached under (module docstring): whatever would change the picture."""
-    latest = latest_values(channel.instrument, until).get(channel.pk)
-    latest_t = latest[0].timestamp() if latest else None
+    # The newest reading up to the window's end: a reading logged since the image was drawn
+    # makes a new key. One probe on (channel_id, t), whatever the window's length.
+    latest = latest_reading_time(channel, until)
+    latest_t = latest.timestamp() if latest else None
     parts = (
         STYLE_VERSION,
         channel.pk,

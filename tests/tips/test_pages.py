@@ -132,11 +132,11 @@ def test_an_overlapping_mount_is_refused_inline_with_what_was_typed_kept(
     text = html(response)
     assert not TipMount.objects.filter(tip=other_tip).exists()
     assert "Not mounted." in text
-    error = re.search(r'id="id_start-error">(.*?)</p>', text, re.S).group(1)
+    error = re.search(r'id="mount-start-error">(.*?)</p>', text, re.S).group(1)
     assert "LTM-T holds one tip at a time" in error and "W-12" in error
     assert f'value="{local_input(earlier)}"' in text
     assert 'value="from slot 5"' in text
-    assert re.search(r'<input[^>]*id="id_start"[^>]*autofocus', text)
+    assert re.search(r'<input[^>]*id="mount-start"[^>]*autofocus', text)
 
 
 def test_taking_a_tip_out(member, instrument, tip, t0):

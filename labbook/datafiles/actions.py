@@ -8,6 +8,7 @@ import logging
 from dataclasses import dataclass
 from typing import Any, BinaryIO
 
+from django.conf import settings
 from django.core.exceptions import ValidationError
 from django.db import IntegrityError, transaction
 from django.utils import timezone
@@ -44,12 +45,19 @@ def ingest(
     source: str = "upload",
     source_path: str = "",
     instrument=None,
+    keep_oversized: bool = False,
 ) -> Ingested:
     """Store the bytes under their SHA-256 and record a pending dataset; processing is queued
-    after commit. The same bytes again are the same dataset (``created`` is False)."""
+    after commit. The same bytes again are the same dataset (``created`` is False).
+
+    ``keep_oversized`` (``ingest``/``watch``): a file larger than the reader limit
+    (``LABBOOK_MAX_UPLOAD_BYTES``; readers hold a file in memory) is stored all the same,
+    streamed and hashed in chunks, and recorded ``unreadable`` with the reason, never
+    processed. Without it (an HTTP upload, whose request body is bounded by the same cap)
+    such a stream raises ``UploadTooLarge`` and nothing is kept."""
     require_member(actor)
     given = _check_metadata(metadata)
-    stored = store_stream(stream)
+    stored = store_stream(stream, keep_oversized=keep_oversized)
     existing = AcquiredFile.objects.filter(sha256=stored.sha256).first()
     if existing is not None:
         return Ingested(existing, created=False)
@@ -63,22 +71,36 @@ def ingest(
         uploaded_by=actor,
         given_metadata=given,
         instrument=instrument,
+        # Queued on commit, just below: stamped in the INSERT rather than by an UPDATE of its
+        # own (which was a third transaction, and a third fsync, per file).
+        queued_at=timezone.now(),
     )
+    if stored.oversized:
+        record.status = AcquiredFile.Status.UNREADABLE
+        record.queued_at = None
+        record.processed_at = timezone.now()
+        record.error = (
+            f"larger than the reader limit of {settings.LABBOOK_MAX_UPLOAD_BYTES:,} bytes "
+            f"(the file has {stored.size_bytes:,}); its bytes are kept, not read"
+        )
     try:
         with transaction.atomic():
             save_record(record, actor)
     except IntegrityError:
         # The same bytes arrived twice at once; the other request recorded them.
         return Ingested(AcquiredFile.objects.get(sha256=stored.sha256), created=False)
-    transaction.on_commit(lambda: queue_processing(record.pk))
+    if record.status == AcquiredFile.Status.PENDING:
+        transaction.on_commit(lambda: queue_processing(record.pk, stamp=False))
     return Ingested(record, created=True)
 
 
-def queue_processing(file_id: int) -> bool:
-    """Wake a worker for a pending file. A broker outage is logged; the sweep queues it later."""
+def queue_processing(file_id: int, *, stamp: bool = True) -> bool:
+    """Wake a worker for a pending file. A broker outage is logged; the sweep queues it later.
+    ``stamp``: record the time it was queued (a new file has it from its INSERT)."""
     from labbook.datafiles.tasks import process_file
 
-    AcquiredFile.objects.filter(pk=file_id).update(queued_at=timezone.now())
+    if stamp:
+        AcquiredFile.objects.filter(pk=file_id).update(queued_at=timezone.now())
     try:
         process_file.delay(file_id)
     except Exception:  # noqa: BLE001 - the row stays pending and the sweep retries it

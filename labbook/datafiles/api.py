@@ -70,8 +70,17 @@ class FileDetailOut(FileOut):
     given_metadata: dict[str, Any]
 
 
+class FileListItem(FileOut):
+    """A search result: the answer of ``GET /files/{id}`` less the ``stats.detail`` block (the
+    full statistics with the histogram, ~3 KB a row), which only the dataset itself answers."""
+
+    @staticmethod
+    def resolve_stats(obj: AcquiredFile) -> dict[str, Any]:
+        return {key: value for key, value in obj.stats.items() if key != "detail"}
+
+
 class FilePage(Schema):
-    items: list[FileOut]
+    items: list[FileListItem]
     next_offset: int | None
 
 
@@ -139,6 +148,9 @@ def upload_file(request, file: File[UploadedFile], metadata: Form[str | None] = 
             instrument=instrument,
         )
     except UploadTooLarge as exc:
+        # An upload over the cap is refused, not kept (unlike ``ingest``/``watch``): the
+        # request body itself is what the cap bounds, so a client cannot make the server
+        # spool an unbounded body; the client still has the file and can ingest it by path.
         raise HttpError(413, str(exc)) from exc
     return Status(201 if result.created else 200, result.file)
 
@@ -149,7 +161,13 @@ def search_files(request, filters: Query[FileFilters]):
     null on the last page (no total count: counting a million rows would cost more than the
     page)."""
     criteria = queries.FileSearch(**filters.dict(exclude={"limit", "offset"}))
-    found = queries.search(criteria).prefetch_related("coverages")
+    # The page never shows the lineage snapshot, the raw header or the metadata as sent:
+    # not fetching them spares the transfer and the JSON decoding of the largest columns.
+    found = (
+        queries.search(criteria)
+        .defer("lineage", "raw_header", "given_metadata")
+        .prefetch_related("coverages")
+    )
     page = list(found[filters.offset : filters.offset + filters.limit + 1])
     more = len(page) > filters.limit
     return {

@@ -86,6 +86,7 @@ def ingest_paths(
                     source=source,
                     source_path=str(path),
                     instrument=instrument,
+                    keep_oversized=True,
                 )
         except (OSError, UploadTooLarge, ValueError) as exc:
             report.failed.append((path, str(exc)))

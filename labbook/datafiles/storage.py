@@ -32,6 +32,17 @@ class StoredBytes:
     size_bytes: int
     storage_name: str
     already_stored: bool
+    #: Over the limit the bytes were kept anyway (``keep_oversized``); no reader may read them.
+    oversized: bool = False
+
+
+class _Spool(File):
+    """The spooled copy, offered to the storage as a temporary file: the file-system
+    storage then moves it into place (one rename) instead of copying the bytes a second
+    time; any other backend reads it as an ordinary file."""
+
+    def temporary_file_path(self) -> str:
+        return self.file.name
 
 
 def content_name(sha256: str) -> str:
@@ -66,11 +77,15 @@ def hash_stream(stream: BinaryIO) -> tuple[str, int]:
     return digest.hexdigest(), size
 
 
-def store_stream(stream: BinaryIO, *, max_bytes: int | None = None) -> StoredBytes:
+def store_stream(
+    stream: BinaryIO, *, max_bytes: int | None = None, keep_oversized: bool = False
+) -> StoredBytes:
     """Copy ``stream`` to a temporary file while hashing it, then keep it under its hash.
 
-    One pass over the bytes: the copy and the hash share each chunk. A stream over
-    ``max_bytes`` is refused with ``UploadTooLarge`` and nothing is kept.
+    One pass over the bytes: the copy and the hash share each chunk (1 MiB at a time, so
+    the memory does not grow with the file). A stream over ``max_bytes`` is refused with
+    ``UploadTooLarge`` and nothing is kept, unless ``keep_oversized``: then it is stored all
+    the same and the result says ``oversized`` (``ingest``/``watch`` keep every file).
     """
     limit = settings.LABBOOK_MAX_UPLOAD_BYTES if max_bytes is None else max_bytes
     digest = hashlib.sha256()
@@ -81,7 +96,7 @@ def store_stream(stream: BinaryIO, *, max_bytes: int | None = None) -> StoredByt
         try:
             while chunk := stream.read(CHUNK):
                 size += len(chunk)
-                if size > limit:
+                if size > limit and not keep_oversized:
                     raise UploadTooLarge(f"the file is larger than the limit of {limit:,} bytes")
                 digest.update(chunk)
                 spool.write(chunk)
@@ -91,16 +106,18 @@ def store_stream(stream: BinaryIO, *, max_bytes: int | None = None) -> StoredByt
             raise
     sha256 = digest.hexdigest()
     name = content_name(sha256)
+    oversized = size > limit
     try:
         if default_storage.exists(name):
-            return StoredBytes(sha256, size, name, already_stored=True)
+            return StoredBytes(sha256, size, name, already_stored=True, oversized=oversized)
         with open(spool.name, "rb") as handle:
-            saved = default_storage.save(name, File(handle, name=name))
+            saved = default_storage.save(name, _Spool(handle, name=name))
         if saved != name:  # a concurrent upload of the same bytes won the race
             default_storage.delete(saved)
-        return StoredBytes(sha256, size, name, already_stored=False)
+        return StoredBytes(sha256, size, name, already_stored=False, oversized=oversized)
     finally:
-        os.unlink(spool.name)
+        if os.path.exists(spool.name):  # moved into place by a file-system storage
+            os.unlink(spool.name)
 
 
 def store_bytes(data: bytes, **kwargs) -> StoredBytes:

@@ -29,9 +29,12 @@ HDF5_READ_TIMEOUT_S = 60
 MAX_ATTEMPTS = 5
 
 
+# The outcome is kept on the row, so no result is stored: publishing one would subscribe to the
+# result backend and stall the uploader for ~19 s whenever Redis is down.
 @shared_task(
     bind=True,
     acks_late=True,
+    ignore_result=True,
     autoretry_for=(OperationalError, ConnectionError, TimeoutError),
     retry_backoff=True,
     retry_backoff_max=300,
@@ -64,7 +67,10 @@ def _process(file_id: int) -> str:
     """Read, measure and link one stored file. The row is locked while it is claimed, so two
     deliveries of the same message never process it twice; a file already done is left alone.
     An unreadable file keeps its bytes and gets the reader's error."""
-    record = AcquiredFile.objects.filter(pk=file_id).first()
+    # One query for the row and what the lineage needs of it (uploader, instrument).
+    record = (
+        AcquiredFile.objects.select_related("uploaded_by", "instrument").filter(pk=file_id).first()
+    )
     if record is None or record.status != AcquiredFile.Status.PENDING:
         return "missing" if record is None else record.status
     # No lock is held while the file is read and measured: two deliveries of the same message
@@ -113,10 +119,21 @@ def _process(file_id: int) -> str:
         uploaded_by=record.uploaded_by,
     )
     with transaction.atomic():
-        current = AcquiredFile.objects.select_for_update().get(pk=file_id)
-        if current.status != AcquiredFile.Status.PENDING:
-            return current.status
-        current.attempts += 1
+        # Lock the row and re-read only its status, version and attempts. Unchanged since it
+        # was read above (the usual case), that row is saved; changed (a correction), it is
+        # read again in full so that nothing of the change is lost.
+        status, updated_at, attempts = (
+            AcquiredFile.objects.select_for_update()
+            .filter(pk=file_id)
+            .values_list("status", "updated_at", "attempts")
+            .get()
+        )
+        if status != AcquiredFile.Status.PENDING:
+            return status
+        current = record
+        if updated_at != record.updated_at:
+            current = AcquiredFile.objects.select_for_update().get(pk=file_id)
+        current.attempts = attempts + 1
         current.kind = analysis.kind
         current.acquired_at = acquired_at
         current.bias_v = _number(metadata.get("bias_v"))

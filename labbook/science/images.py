@@ -830,6 +830,17 @@ class Periodicity:
 _SPOT_CONTRAST = 20.0
 
 
+def _fft_module() -> tuple[Any, dict[str, Any]]:
+    """scipy's pocketfft, which keeps float32 in single precision and runs ~3× faster than
+    numpy's at 512² (0.5 against 1.4 ms for rfft2, measured); one thread, as with BLAS (see
+    :func:`_dot`). Imported on first use: importing this module stays light."""
+    try:
+        import scipy.fft
+    except ImportError:  # pragma: no cover - scipy is a dependency; numpy's FFT is the same
+        return np.fft, {}
+    return scipy.fft, {"workers": 1}
+
+
 def _hann(n: int) -> np.ndarray:
     return np.hanning(n).astype(np.float32)
 
@@ -861,20 +872,26 @@ def _power_spectrum(image: np.ndarray, fit: _Fit) -> np.ndarray:
     window_y, window_x = _hann(ny), _hann(nx)
     spectrum = np.empty((ny, columns), dtype=np.complex64)
     blocks = _row_blocks(ny, nx)
-    buffer = _buffer("levelled", _block_shape(blocks, nx))
+    # Levelled in float32 straight from the image: no float64 block (peak positions need far
+    # less than float32's 1e-7 precision, see above).
+    column_32, row_32 = column_term.astype(np.float32), row_term.astype(np.float32)
+    windowed = _buffer("windowed", _block_shape(blocks, nx), np.float32)
+    fft, options = _fft_module()
     for rows in blocks:
-        block = _levelled_block(image, rows, column_term, row_term, buffer).astype(np.float32)
+        block = windowed[: rows.stop - rows.start]
+        np.subtract(image[rows], column_32, out=block, casting="same_kind")
+        block -= row_32[rows, None]
         if fit.has_nan:
             block[np.isnan(block)] = 0.0
         block *= window_y[rows, None]
         block *= window_x
-        np.fft.rfft(block, axis=1, out=spectrum[rows])
+        spectrum[rows] = fft.rfft(block, axis=1, **options)
     power = np.empty((ny, columns), dtype=np.float32)
     step = max(1, _BLOCK_ELEMENTS // ny)
     for start in range(0, columns, step):
-        chunk = spectrum[:, start : start + step]
-        np.fft.fft(chunk, axis=0, out=chunk)
-        np.add(np.square(chunk.real), np.square(chunk.imag), out=power[:, start : start + step])
+        chunk = fft.fft(spectrum[:, start : start + step], axis=0, **options)
+        np.multiply(chunk.real, chunk.real, out=power[:, start : start + step])
+        power[:, start : start + step] += np.square(chunk.imag)
     return power
 
 
@@ -917,15 +934,24 @@ def dominant_period(z: np.ndarray, *, dx: float, dy: float, min_cycles: float = 
     """
     dx, dy = _spacing(dx, dy)
     image = _as_image(z, min_size=8)
+    return _dominant_period(image, None, dx, dy, min_cycles)
+
+
+def _dominant_period(
+    image: np.ndarray, fit: _Fit | None, dx: float, dy: float, min_cycles: float
+) -> Periodicity:
+    """:func:`dominant_period` of a validated image, reusing its plane fit when known."""
     ny, nx = image.shape
     cycles = require_positive(min_cycles, "min_cycles")
+    if min(ny, nx) < 8:
+        raise ScienceInputError(f"z must be at least 8×8 pixels, got {ny}×{nx}", argument="z")
     if cycles >= min(ny, nx) / 2:
         raise ScienceInputError(
             f"min_cycles ({cycles:g}) leaves no spatial frequency in a {ny}×{nx} image",
             argument="min_cycles",
         )
-    fit = _fit(image)
-    column_term, row_term = fit.terms()
+    if fit is None:
+        fit = _fit(image)
     power = _power_spectrum(image, fit)
     signed_rows = np.fft.fftfreq(ny, 1.0 / ny)  # row i holds p = signed_rows[i] cycles in y
     columns = np.arange(power.shape[1], dtype=np.float64)
@@ -1042,6 +1068,7 @@ def image_statistics(
     line_roughness = _roughness(levelled, lines, _levelling_name(line_method))
     second = _second_pass(image, levelled, bins=bins, coverage=coverage)
     plane = levelled.fit.plane(dx, dy)
+    fit = levelled.fit
     del levelled  # the kept levelled block is no longer needed (the FFT levels afresh)
     ny, nx = image.shape
     result: dict[str, Any] = {
@@ -1074,7 +1101,7 @@ def image_statistics(
         }
     if periodicity:
         try:
-            result["periodicity"] = asdict(dominant_period(image, dx=dx, dy=dy))
+            result["periodicity"] = asdict(_dominant_period(image, fit, dx, dy, 3.0))
         except ScienceInputError:
             result["periodicity"] = None
     return result

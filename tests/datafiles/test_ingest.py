@@ -351,3 +351,51 @@ def test_verify_files_reports_changed_and_missing_bytes_and_deletes_nothing(
     assert AcquiredFile.objects.count() == 3  # nothing deleted
     assert verify_stored_files.apply().get() == {"checked": 3, "changed": 1, "missing": 1}
     assert mail.outbox and mail.outbox[0].to == ["mara@example.org"]
+
+
+def test_an_oversized_file_from_the_ingest_command_is_kept_unreadable(
+    member, settings, tmp_path, django_capture_on_commit_callbacks
+):
+    import hashlib
+    import os
+    from io import StringIO
+
+    from django.core.files.storage import default_storage
+    from django.core.management import call_command
+
+    settings.MEDIA_ROOT = str(tmp_path / "files")
+    # The reader limit lowered to 1 MiB, so a sparse 3 MiB file stands for one over 2 GiB.
+    settings.LABBOOK_MAX_UPLOAD_BYTES = 1 << 20
+    folder = tmp_path / "big"
+    folder.mkdir()
+    big = folder / "huge.h5"
+    with big.open("wb") as handle:
+        handle.truncate(3 << 20)  # a hole: no blocks written (as `truncate -s 3M`)
+        handle.seek((3 << 20) - 4)
+        handle.write(b"tail")
+    expected = hashlib.sha256(big.read_bytes()).hexdigest()  # hashlib over the same bytes
+    out = StringIO()
+    with django_capture_on_commit_callbacks(execute=True) as queued:
+        call_command("ingest", str(folder), "--user", member.username, stdout=out)
+    assert "1 new, 0 already stored, 0 failed" in out.getvalue()
+    assert queued == []  # never handed to a reader
+    record = AcquiredFile.objects.get()
+    assert record.status == "unreadable" and record.size_bytes == 3 << 20
+    assert record.error.startswith("larger than the reader limit of 1,048,576 bytes")
+    assert "3,145,728" in record.error
+    assert record.sha256 == expected and record.storage_name == content_name(expected)
+    with default_storage.open(record.storage_name, "rb") as stored:
+        assert hashlib.sha256(stored.read()).hexdigest() == expected  # the bytes are kept
+    assert not os.listdir(tmp_path / "files" / "incoming")  # no spool left behind
+
+
+def test_an_upload_over_the_cap_is_refused_and_nothing_is_kept(upload, settings, tmp_path):
+    import os
+
+    settings.LABBOOK_MAX_UPLOAD_BYTES = 1 << 10
+    response = upload(b"\0" * (2 << 10), "big.npy")
+    assert response.status_code == 413
+    assert AcquiredFile.objects.count() == 0
+    stored = tmp_path / "files" / "acquired"
+    assert not stored.exists() or not any(stored.rglob("*"))
+    assert not os.listdir(tmp_path / "files" / "incoming")

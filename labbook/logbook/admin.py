@@ -5,17 +5,18 @@ from django.contrib import admin
 from simple_history.admin import SimpleHistoryAdmin
 
 from labbook.logbook.models import Note, Session
+from labbook.provenance.retirement import RetireNotDeleteAdmin
 
 
 @admin.register(Session)
-class SessionAdmin(SimpleHistoryAdmin):
+class SessionAdmin(RetireNotDeleteAdmin, SimpleHistoryAdmin):
     list_display = ("instrument", "operator", "start", "end", "goal", "retired_at")
     list_filter = ("instrument",)
     search_fields = ("goal", "summary", "operator__username")
 
 
 @admin.register(Note)
-class NoteAdmin(SimpleHistoryAdmin):
+class NoteAdmin(RetireNotDeleteAdmin, SimpleHistoryAdmin):
     list_display = ("at", "instrument", "author", "session", "sample", "tip", "retired_at")
     list_filter = ("instrument",)
     search_fields = ("text",)

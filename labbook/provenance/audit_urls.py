@@ -1,4 +1,13 @@
-from django.urls import path  # noqa: F401
+"""The change log and the tip audit, under /changes/."""
+
+from django.urls import path
+
+from labbook.provenance import audit_views
 
 app_name = "audit"
-urlpatterns: list = []
+
+urlpatterns = [
+    path("", audit_views.change_log, name="log"),
+    path("tips/", audit_views.tips_of_datasets, name="tips_of_files"),
+    path("tips/<int:pk>/", audit_views.tip_audit, name="tip"),
+]

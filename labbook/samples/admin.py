@@ -3,6 +3,7 @@
 from django.contrib import admin
 from simple_history.admin import SimpleHistoryAdmin
 
+from labbook.provenance.retirement import RetireNotDeleteAdmin
 from labbook.samples.models import (
     DepositionSource,
     Preparation,
@@ -21,26 +22,26 @@ class TransferInline(admin.TabularInline):
 
 
 @admin.register(Sample)
-class SampleAdmin(SimpleHistoryAdmin):
+class SampleAdmin(RetireNotDeleteAdmin, SimpleHistoryAdmin):
     list_display = ("name", "substrate", "identifier", "retired_at")
     search_fields = ("name", "substrate", "identifier", "notes")
     inlines = [TransferInline]
 
 
 @admin.register(Recipe)
-class RecipeAdmin(SimpleHistoryAdmin):
+class RecipeAdmin(RetireNotDeleteAdmin, SimpleHistoryAdmin):
     list_display = ("name", "version", "substrate", "retired_at")
     search_fields = ("name", "description")
     readonly_fields = ("version", "previous", "steps")  # a new version is made by revising
 
 
 @admin.register(DepositionSource)
-class DepositionSourceAdmin(SimpleHistoryAdmin):
+class DepositionSourceAdmin(RetireNotDeleteAdmin, SimpleHistoryAdmin):
     list_display = ("name", "material", "kind", "instrument", "retired_at")
 
 
 @admin.register(RateCalibration)
-class RateCalibrationAdmin(SimpleHistoryAdmin):
+class RateCalibrationAdmin(RetireNotDeleteAdmin, SimpleHistoryAdmin):
     list_display = ("source", "measured_at", "model", "rate_ml_per_min", "uncertainty_ml_per_min")
     readonly_fields = ("parameters", "covariance", "points", "residual_std")
 
@@ -52,7 +53,7 @@ class StepInline(admin.StackedInline):
 
 
 @admin.register(Preparation)
-class PreparationAdmin(SimpleHistoryAdmin):
+class PreparationAdmin(RetireNotDeleteAdmin, SimpleHistoryAdmin):
     list_display = ("sample", "instrument", "operator", "started_at", "recipe")
     list_filter = ("instrument", "sample")
     date_hierarchy = "started_at"

@@ -5,6 +5,7 @@ check overlaps; the admin is for corrections."""
 from django.contrib import admin
 from simple_history.admin import SimpleHistoryAdmin
 
+from labbook.provenance.retirement import RetireNotDeleteAdmin
 from labbook.tips.models import Conditioning, Tip, TipMount
 
 
@@ -15,7 +16,7 @@ class TipMountInline(admin.TabularInline):
 
 
 @admin.register(Tip)
-class TipAdmin(SimpleHistoryAdmin):
+class TipAdmin(RetireNotDeleteAdmin, SimpleHistoryAdmin):
     list_display = ("name", "material", "origin", "sensor_kind", "identifier", "retired_at")
     list_filter = ("material", "origin", "sensor_kind")
     search_fields = ("name", "identifier", "preparation", "notes")
@@ -23,14 +24,14 @@ class TipAdmin(SimpleHistoryAdmin):
 
 
 @admin.register(TipMount)
-class TipMountAdmin(SimpleHistoryAdmin):
+class TipMountAdmin(RetireNotDeleteAdmin, SimpleHistoryAdmin):
     list_display = ("tip", "instrument", "start", "end", "retired_at")
     list_filter = ("instrument",)
     search_fields = ("tip__name", "notes")
 
 
 @admin.register(Conditioning)
-class ConditioningAdmin(SimpleHistoryAdmin):
+class ConditioningAdmin(RetireNotDeleteAdmin, SimpleHistoryAdmin):
     list_display = ("tip", "kind", "at", "instrument", "retired_at")
     list_filter = ("kind", "instrument")
     search_fields = ("tip__name", "outcome")

@@ -1,8 +1,15 @@
 from __future__ import annotations
 
+from collections.abc import Callable
+
 from django.conf import settings
 from django.db import models
 from simple_history.models import HistoricalRecords
+
+#: Checks run before a record is deleted; each raises to refuse (the provenance app registers
+#: the one that names the datasets depending on the record). Django's own check of protected
+#: keys runs later, so without this its generic message would come first.
+delete_guards: list[Callable[[models.Model], None]] = []
 
 
 class LabRecord(models.Model):
@@ -24,6 +31,11 @@ class LabRecord(models.Model):
     @property
     def is_retired(self) -> bool:
         return self.retired_at is not None
+
+    def delete(self, *args, **kwargs):
+        for guard in delete_guards:
+            guard(self)
+        return super().delete(*args, **kwargs)
 
 
 class Job(models.Model):

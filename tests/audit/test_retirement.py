@@ -32,10 +32,15 @@ def test_records_behind_a_dataset_refuse_deletion_naming_the_datasets(lab, which
     assert type(record).objects.filter(pk=record.pk).exists()
 
 
-def test_records_behind_a_dataset_by_key_are_refused_by_django_too(lab):
+def test_records_behind_a_dataset_by_key_are_refused_naming_the_datasets(lab):
     for record in (lab.tip, lab.sample, lab.instrument, lab.preparation):
-        with pytest.raises(ProtectedError), transaction.atomic():
+        with pytest.raises(RecordInUse) as refused, transaction.atomic():
             record.delete()
+        assert "Retire it instead" in str(refused.value)
+    assert Tip.objects.filter(pk=lab.tip.pk).exists()
+    # A queryset delete skips Model.delete(); Django's protected keys still refuse it.
+    with pytest.raises(ProtectedError), transaction.atomic():
+        Tip.objects.filter(pk=lab.tip.pk).delete()
     assert Tip.objects.filter(pk=lab.tip.pk).exists()
 
 

@@ -23,12 +23,14 @@ from django.db.models import Max, OuterRef, Q, Subquery, Value
 from django.urls import reverse
 from django.utils import timezone
 
+from labbook.core import jobs
 from labbook.core.records import save_record
 from labbook.datafiles import lineage as file_lineage
 from labbook.datafiles.actions import replace_coverages, store_lineage
 from labbook.datafiles.models import AcquiredFile
 from labbook.instruments.models import Chamber, Channel, Instrument, InstrumentEvent
 from labbook.logbook.models import Note, Session
+from labbook.provenance.tasks import RERESOLVE_JOB  # importing it registers the job handler
 from labbook.samples.models import (
     DepositionSource,
     Preparation,
@@ -48,6 +50,9 @@ _BOOKKEEPING = frozenset({"id", "created_at", "updated_at"})
 PAGE_SIZE = 50
 #: Most datasets the tip audit and the set-of-datasets audit read at once.
 MAX_AUDIT_FILES = 2000
+#: Most datasets a correction re-resolves in the request that made it (~100 ms each); a larger
+#: correction is re-resolved by a background job (tasks.py) so the page answers at once.
+IMMEDIATE_RERESOLVE_LIMIT = 20
 
 
 @dataclass(frozen=True)
@@ -769,7 +774,8 @@ def reresolve_affected_files(model: type[models.Model], instance: models.Model) 
     mount that closes the previous one) is resolved once, against the final records.
 
     Returns how many datasets were marked. Each re-resolved dataset that changes gets a
-    history row naming the actor of the correction and the record corrected.
+    history row naming the actor of the correction and the record corrected. More than
+    ``IMMEDIATE_RERESOLVE_LIMIT`` datasets are handed to a durable background job instead.
     """
     condition = affected_files(model, instance)
     if condition is None:
@@ -785,6 +791,21 @@ def reresolve_affected_files(model: type[models.Model], instance: models.Model) 
     )
     if not ids:
         return 0
+    if len(ids) > IMMEDIATE_RERESOLVE_LIMIT:
+        # The job row is written in this transaction and queued after commit, so it runs
+        # against the final records, and a broker outage leaves it for the sweep.
+        jobs.enqueue(
+            RERESOLVE_JOB,
+            {
+                "model": model._meta.label,
+                "pk": instance.pk,
+                "files": ids,
+                "actor": getattr(actor, "pk", None),
+                "reason": reason,
+            },
+            actor=actor,
+        )
+        return len(ids)
     pending = _pending_ids()
     for file_id in ids:
         pending[file_id] = (actor, reason)

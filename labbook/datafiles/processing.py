@@ -4,6 +4,8 @@ module only decides which function applies to which kind of data."""
 
 from __future__ import annotations
 
+import re
+import warnings
 from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Any
@@ -64,39 +66,111 @@ def _flat_image_stats(full: dict[str, Any]) -> dict[str, Any]:
     return flat
 
 
-def _spectrum_stats(parsed: ParsedFile) -> tuple[dict[str, Any], bytes | None]:
-    bias = parsed.axes.get("bias_v")
-    if bias is None or bias.size < 5:
-        return {}, None
-    current_name = next(
-        (n for n, u in parsed.units.items() if u == "A" and n in parsed.channels), None
+# Channel names that hold a lock-in dI/dV whose unit does not say so (a lock-in output is often
+# stored in volts): the in-phase output or the magnitude, never the quadrature (y) or the phase.
+# Matched on the readers' snake-case names ("LockIn X" → "lockin_x", "dI/dV" → "di_dv").
+_LOCKIN_NAME = re.compile(r"^(di_?dv|lockin(_?\d+)?(_(x|r|di_?dv))?|lockin_di_?dv(_x)?)$")
+
+
+def _lockin_channel(parsed: ParsedFile, ndim: int) -> str | None:
+    """The measured dI/dV channel: a conductance (unit S, which A/V becomes in the readers),
+    else one named like a lock-in output; None when the file has neither."""
+    candidates = [n for n, a in parsed.channels.items() if a.ndim == ndim]
+    for name in candidates:
+        if parsed.units.get(name) == "S":
+            return name
+    if parsed.metadata.get("lockin_harmonic") not in (None, 1):
+        return None  # a second-harmonic output is d²I/dV², not dI/dV
+    return next((n for n in candidates if _LOCKIN_NAME.match(n)), None)
+
+
+def _current_channel(parsed: ParsedFile, ndim: int) -> str | None:
+    return next(
+        (n for n, a in parsed.channels.items() if a.ndim == ndim and parsed.units.get(n) == "A"),
+        None,
     )
+
+
+def _window(points: int) -> int:
+    # 21 points, or the largest odd window a short sweep allows (order 3 needs 5).
+    return min(21, points if points % 2 else points - 1)
+
+
+def _sweep_stats(
+    bias: np.ndarray,
+    current: np.ndarray | None,
+    lockin: np.ndarray | None,
+    lockin_unit: str,
+) -> tuple[dict[str, Any], np.ndarray | None]:
+    """Statistics of one sweep and the dI/dV trace for its picture (None: no dI/dV).
+
+    dI/dV is the lock-in's where there is one (a numerical derivative amplifies the current
+    noise), else the Savitzky–Golay derivative of I(V). A lock-in output not in siemens is
+    put on the numerical dI/dV's scale by a least-squares factor through zero when there is
+    a current (common practice: calibrating the lock-in against dI/dV of the I(V) measured
+    with it); the factor's sign also undoes a lock-in phase set 180° off.
+    """
     stats: dict[str, Any] = {
         "points": int(bias.size),
         "bias_min_v": float(np.nanmin(bias)),
         "bias_max_v": float(np.nanmax(bias)),
     }
-    trace = None
-    if current_name is not None:
-        current = np.asarray(parsed.channels[current_name], dtype=float)
-        # 21 points, or the largest odd window a short sweep allows (order 3 needs 5).
-        window = min(21, bias.size if bias.size % 2 else bias.size - 1)
-        if window >= 5:
-            try:
-                didv = spectra.numerical_didv(bias, current, window=window, order=3)
-            except ValueError as exc:
-                stats["didv_error"] = str(exc)
-            else:
-                trace = didv
-                stats["didv_min_a_per_v"] = float(np.nanmin(didv))
-                stats["didv_max_a_per_v"] = float(np.nanmax(didv))
-                try:
-                    onset = spectra.onset_energy(bias, didv)
-                except (ValueError, AttributeError):
-                    onset = None
-                stats["onset_v"] = None if onset is None else float(onset)
+    window = _window(bias.size)
+    numerical = None
+    if current is not None:
         stats["current_min_a"] = float(np.nanmin(current))
         stats["current_max_a"] = float(np.nanmax(current))
+        if window >= 5:
+            try:
+                numerical = spectra.numerical_didv(bias, current, window=window, order=3)
+            except ValueError as exc:
+                stats["didv_error"] = str(exc)
+    didv, calibrated = numerical, numerical is not None
+    if lockin is not None:
+        didv, calibrated = lockin.astype(float), lockin_unit == "S"
+        if not calibrated and numerical is not None:
+            norm = float(np.dot(didv, didv))
+            if norm > 0.0 and np.isfinite(norm):
+                scale = float(np.dot(numerical, didv)) / norm
+                if scale != 0.0 and np.isfinite(scale):
+                    didv, calibrated = didv * scale, True
+                    stats["didv_lockin_scale"] = scale
+        stats["didv_source"] = "lock-in"
+    elif numerical is not None:
+        stats["didv_source"] = "numerical"
+    if didv is None:
+        return stats, None
+    if calibrated:
+        stats["didv_min_a_per_v"] = float(np.nanmin(didv))
+        stats["didv_max_a_per_v"] = float(np.nanmax(didv))
+    onset_trace = didv
+    if lockin is not None and window >= 5:
+        try:  # the same smoothing the numerical derivative has, so noise does not cross early
+            onset_trace = spectra.savgol_smooth(didv, window=window, order=3)
+        except ValueError:
+            onset_trace = didv
+    try:
+        onset = spectra.onset_energy(bias, onset_trace)
+    except ValueError:
+        onset = None
+    stats["onset_v"] = None if onset is None else float(onset)
+    return stats, didv
+
+
+def _spectrum_stats(parsed: ParsedFile) -> tuple[dict[str, Any], bytes | None]:
+    bias = parsed.axes.get("bias_v")
+    if bias is None or bias.size < 5:
+        return {}, None
+    current_name = _current_channel(parsed, 1)
+    lockin_name = _lockin_channel(parsed, 1)
+    stats, trace = _sweep_stats(
+        bias,
+        None if current_name is None else np.asarray(parsed.channels[current_name], float),
+        None if lockin_name is None else np.asarray(parsed.channels[lockin_name], float),
+        parsed.units.get(lockin_name or "", ""),
+    )
+    if lockin_name is not None:
+        stats["didv_channel"] = lockin_name
     if trace is None:
         trace = np.asarray(next(iter(parsed.channels.values())), dtype=float)
         if trace.ndim != 1:
@@ -105,6 +179,70 @@ def _spectrum_stats(parsed: ParsedFile) -> tuple[dict[str, Any], bytes | None]:
         picture = thumbnails.spectrum_png(bias, trace)
     except ValueError:
         picture = None
+    return stats, picture
+
+
+def _bias_mean_weights(bias: np.ndarray, derivative: bool) -> np.ndarray:
+    """w with (spectra @ w) = the mean over bias of each spectrum (derivative False) or of its
+    Savitzky–Golay dI/dV (True), as one matrix–vector product over the grid."""
+    if not derivative:
+        return np.full(bias.size, 1.0 / bias.size)
+    return spectra.mean_didv_weights(bias, window=_window(bias.size), order=3)
+
+
+def _grid_stats(parsed: ParsedFile) -> tuple[dict[str, Any], bytes | None]:
+    """A grid of spectra (y, x, bias): a map of dI/dV averaged over the bias axis (the
+    lock-in's where the file has one, else the numerical derivative of the current), its
+    statistics and thumbnail; and the statistics of the grid's mean spectrum."""
+    bias = parsed.axes.get("bias_v")
+    if bias is None or bias.size < 5:
+        return {}, None
+    current_name = _current_channel(parsed, 3)
+    lockin_name = _lockin_channel(parsed, 3)
+    source_name = lockin_name or current_name
+    if source_name is None:
+        return {"points": int(bias.size), "map_error": "no current or dI/dV channel"}, None
+    grid = parsed.channels[source_name]
+    unit = parsed.units.get(source_name, "")
+    stats: dict[str, Any] = {}
+    try:
+        weights = _bias_mean_weights(bias, derivative=lockin_name is None)
+    except ValueError as exc:
+        return {"points": int(bias.size), "map_error": str(exc)}, None
+    work = grid.dtype if grid.dtype in (np.float32, np.float64) else np.dtype(np.float64)
+    # A spectrum with a NaN (an aborted or incomplete grid) gives a NaN pixel, not a guess.
+    conductance_map = np.asarray(grid, dtype=work) @ weights.astype(work)
+    finite = conductance_map[np.isfinite(conductance_map)].astype(np.float64)
+    stats["map"] = "mean dI/dV over bias"
+    stats["map_source"] = "lock-in" if lockin_name is not None else "numerical"
+    stats["channel"] = source_name
+    stats["unit"] = unit if lockin_name is not None else "S"
+    stats["map_pixels"] = [int(grid.shape[1]), int(grid.shape[0])]
+    stats["map_nan_pixels"] = int(conductance_map.size - finite.size)
+    for key, reduce in (("mean", np.mean), ("std", np.std), ("min", np.min), ("max", np.max)):
+        stats[key] = float(reduce(finite)) if finite.size else None
+    picture = None
+    if finite.size:
+        dx, dy = _spacing(parsed.metadata, conductance_map.shape)
+        try:
+            # No plane levelling: a conductance map has no sample tilt to remove.
+            picture = thumbnails.thumbnail_png(conductance_map, level=False, dx=dx, dy=dy)
+        except ValueError as exc:
+            stats["thumbnail_error"] = str(exc)
+
+    def mean_spectrum(name: str | None) -> np.ndarray | None:
+        if name is None:
+            return None
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # a bias point NaN everywhere
+            return np.nanmean(parsed.channels[name], axis=(0, 1), dtype=np.float64)
+
+    current, lockin = mean_spectrum(current_name), mean_spectrum(lockin_name)
+    spectrum, _ = _sweep_stats(bias, current, lockin, parsed.units.get(lockin_name or "", ""))
+    if lockin_name is not None:
+        spectrum["didv_channel"] = lockin_name
+    # The mean spectrum's keys are those of a single spectrum and none is a map key.
+    stats.update(spectrum)
     return stats, picture
 
 
@@ -134,8 +272,10 @@ def analyse(parsed: ParsedFile, given: dict[str, Any]) -> Analysis:
         result.stats["channel"] = name
         result.thumbnail = thumbnails.thumbnail_png(z, dx=dx, dy=dy)
         metadata.setdefault("channel_name", name)
-    elif kind in ("spectrum", "grid"):
+    elif kind == "spectrum":
         result.stats, result.thumbnail = _spectrum_stats(parsed)
+    elif kind == "grid":
+        result.stats, result.thumbnail = _grid_stats(parsed)
     return result
 
 

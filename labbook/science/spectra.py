@@ -270,6 +270,38 @@ def numerical_didv(
     return _savgol(current, window, order, 1, uniform_spacing(bias, "bias_v"))
 
 
+def mean_didv_weights(bias_v: np.ndarray, *, window: int = 21, order: int = 3) -> np.ndarray:
+    """Weights w (1/V) with ``current @ w`` = the mean over bias of :func:`numerical_didv`.
+
+    The Savitzky–Golay derivative is linear, D·I, so its mean is (1ᵀD/n)·I: w = Dᵀ1/n, built
+    here in O(n·window) from the interior weights and the end matrices, never the n × n D.
+    A grid's bias-averaged conductance map is then one matrix–vector product, with no
+    derivative array as large as the grid; a spectrum with a NaN gives a NaN there.
+    """
+    bias = _as_spectra(bias_v, "bias_v")
+    if bias.ndim != 1:
+        raise ScienceInputError("bias_v must be 1-D", argument="bias_v")
+    window, order, _ = _check_filter(window, order, 1)
+    n = bias.size
+    if n < window:
+        raise ScienceInputError(
+            f"window ({window} points) is longer than the spectrum ({n} points)",
+            argument="window",
+        )
+    step = uniform_spacing(bias, "bias_v")
+    coefficients = savgol_coefficients(window, order, 1)
+    left, right = _edge_matrices(window, order, 1)
+    inner = n - window + 1
+    weights = np.zeros(n)
+    # Output i (interior) is Σ_k c_k·I[i − h + k]: each weight c_k lands on the inputs
+    # k … k + inner − 1, once per interior output.
+    for k in range(window):
+        weights[k : k + inner] += coefficients[k]
+    weights[:window] += left.sum(axis=0)
+    weights[n - window :] += right.sum(axis=0)
+    return weights / (n * step)
+
+
 def _exponential_sums(position: np.ndarray, values: np.ndarray) -> np.ndarray:
     """S_i = Σ_j values_j · exp(−|position_i − position_j|) for ascending positions, in O(n).
 

@@ -5,7 +5,7 @@ Truncated HDF5 and TIFF, an .npz zip bomb, headers that claim 10^6 × 10^6 pixel
 data, a pickled object in an .npy (which must never be unpickled), file names that try to
 leave the storage, and an upload over the size limit.
 
-The readers run in a fresh interpreter for the memory figures: ``ru_maxrss`` of that process
+The readers run in a fresh interpreter for the memory figures: its peak resident set (VmHWM)
 is the high-water mark of everything (numpy, h5py's C library), and tracemalloc gives each
 file's own peak of Python-visible allocations (numpy's buffers are traced).
 """
@@ -228,7 +228,14 @@ _HARNESS = textwrap.dedent(
         tracemalloc.stop()
         out[label] = {"outcome": outcome, "message": message, "seconds": seconds,
                       "traced_mb": peak / 2**20}
-    out["_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    # VmHWM belongs to this interpreter's own memory map; ru_maxrss would also carry the high
+    # water of the forking parent (the test run) across exec on Linux.
+    try:
+        with open("/proc/self/status") as status:
+            hwm = next(line for line in status if line.startswith("VmHWM:"))
+        out["_rss_mb"] = int(hwm.split()[1]) / 1024
+    except (OSError, StopIteration):
+        out["_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     print(json.dumps(out))
     """
 )

@@ -15,15 +15,13 @@ from collections.abc import Iterator
 import pytest
 import schemathesis
 from django.core.signals import request_finished, request_started
-from django.db import close_old_connections
+from django.db import close_old_connections, transaction
 from hypothesis import HealthCheck, Phase, given, settings
 
 from labbook.accounts.actions import mint_token
 from tests.security.test_permissions_matrix import world  # noqa: F401 - a fixture
 
-# Each request commits on its own, as in production: inside one test transaction a refused
-# value (PostgreSQL's DataError for an id past 64 bits) would abort every later request too.
-pytestmark = pytest.mark.django_db(transaction=True)
+pytestmark = pytest.mark.django_db
 
 MAX_EXAMPLES = 15
 BUDGET_S = 90
@@ -42,8 +40,19 @@ def wsgi_app(settings) -> Iterator[object]:
     # test's transaction that would close the test database under the next request.
     request_started.disconnect(close_old_connections)
     request_finished.disconnect(close_old_connections)
+    inner = get_wsgi_application()
+
+    def app(environ, start_response):
+        # Each request in a savepoint rolled back afterwards: a value the database refuses
+        # (PostgreSQL's DataError for an id past 64 bits) aborts only that request's work, as
+        # it would in production, where each request has its own transaction.
+        with transaction.atomic():
+            body = list(inner(environ, start_response))
+            transaction.set_rollback(True)
+        return body
+
     try:
-        yield get_wsgi_application()
+        yield app
     finally:
         request_started.connect(close_old_connections)
         request_finished.connect(close_old_connections)

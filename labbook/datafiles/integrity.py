@@ -3,7 +3,14 @@ when it arrived. Nothing is deleted or rewritten; a changed or missing file is r
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+import json
+import os
+from dataclasses import asdict, dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from django.conf import settings
 
 from labbook.datafiles.models import AcquiredFile
 from labbook.datafiles.storage import verify_stored
@@ -44,4 +51,34 @@ def verify_all() -> IntegrityReport:
             report.ok += 1
         else:
             report.problems.append(Problem(file_id, name, sha256, state))
+    _keep(report)
     return report
+
+
+def _report_path() -> Path:
+    return Path(settings.DATA_DIR) / "integrity" / "latest.json"
+
+
+def _keep(report: IntegrityReport) -> None:
+    """The latest run, for the integrity page; written whole, then renamed into place."""
+    path = _report_path()
+    path.parent.mkdir(parents=True, exist_ok=True)
+    body = {
+        "checked_at": datetime.now(UTC).isoformat(),
+        "checked": report.checked,
+        "ok": report.ok,
+        "problems": [asdict(problem) for problem in report.problems],
+    }
+    partial = path.with_suffix(".partial")
+    partial.write_text(json.dumps(body), encoding="utf-8")
+    os.replace(partial, path)
+
+
+def latest_report() -> dict[str, Any] | None:
+    """The last run's findings (``checked_at`` as an aware datetime), or None before the first."""
+    try:
+        body = json.loads(_report_path().read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return None
+    body["checked_at"] = datetime.fromisoformat(body["checked_at"])
+    return body

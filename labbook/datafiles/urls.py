@@ -9,6 +9,7 @@ app_name = "datafiles"
 urlpatterns = [
     path("", views.search, name="search"),
     path("upload/", views.upload, name="upload"),
+    path("integrity/", views.integrity, name="integrity"),
     # htmx parts of the upload page: a row that follows its file, the batch's progress.
     path("upload/progress/", views.progress_part, name="progress"),
     path("<int:pk>/row/", views.row_part, name="row"),

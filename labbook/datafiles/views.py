@@ -79,6 +79,15 @@ def _page_url(request: HttpRequest, page: int) -> str:
 
 @lab_member_required
 @require_GET
+def integrity(request: HttpRequest) -> HttpResponse:
+    """The latest re-hash of the stored files (``verify_files`` or the weekly task)."""
+    from labbook.datafiles.integrity import latest_report
+
+    return render(request, "datafiles/integrity.html", {"report": latest_report()})
+
+
+@lab_member_required
+@require_GET
 def search(request: HttpRequest) -> HttpResponse:
     """Datasets by the conditions they were taken under. A GET form: the URL is the search,
     to bookmark or to send to a colleague. Pages by limit + 1, never by a count."""

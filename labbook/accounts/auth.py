@@ -13,7 +13,13 @@ from ninja.errors import HttpError
 from ninja.security import APIKeyCookie, HttpBearer
 
 from labbook.accounts.models import ApiToken, hash_token
-from labbook.accounts.permissions import PermissionDenied, is_lab_member, is_manager
+from labbook.accounts.permissions import (
+    PermissionDenied,
+    is_lab_member,
+    is_manager,
+    lab_groups_annotation,
+    remember_lab_groups,
+)
 
 SAFE_METHODS = frozenset({"GET", "HEAD", "OPTIONS"})
 # Writing last_used_at on every request would turn every read into a write.
@@ -70,11 +76,13 @@ class BearerToken(HttpBearer):
         found = (
             ApiToken.objects.active()
             .select_related("user")
+            .annotate(**lab_groups_annotation("user"))
             .filter(token_hash=hash_token(token))
             .first()
         )
         if found is None:
             return None
+        remember_lab_groups(found.user, found)
         _admit(found.user)
         if found.read_only and request.method not in SAFE_METHODS:
             raise HttpError(403, "this token is read-only")

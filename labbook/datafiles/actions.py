@@ -58,9 +58,10 @@ def ingest(
     require_member(actor)
     given = _check_metadata(metadata)
     stored = store_stream(stream, keep_oversized=keep_oversized)
-    existing = AcquiredFile.objects.filter(sha256=stored.sha256).first()
-    if existing is not None:
-        return Ingested(existing, created=False)
+    # A new file is the usual case: asking only for an id is a narrow query; the whole row
+    # (a wide SELECT to build, with its JSON to decode) is read only for bytes seen before.
+    if AcquiredFile.objects.filter(sha256=stored.sha256).exists():
+        return Ingested(AcquiredFile.objects.get(sha256=stored.sha256), created=False)
     record = AcquiredFile(
         sha256=stored.sha256,
         size_bytes=stored.size_bytes,
@@ -85,7 +86,12 @@ def ingest(
         )
     try:
         with transaction.atomic():
-            save_record(record, actor)
+            # The uploader and instrument are rows the caller holds, and the SHA-256 is
+            # unique in the database, whose IntegrityError is handled just below: asking
+            # again would cost three queries per file for nothing.
+            save_record(
+                record, actor, trusted=("uploaded_by", "instrument"), validate_unique=False
+            )
     except IntegrityError:
         # The same bytes arrived twice at once; the other request recorded them.
         return Ingested(AcquiredFile.objects.get(sha256=stored.sha256), created=False)
@@ -123,8 +129,15 @@ def store_lineage(record: AcquiredFile, found: lineage.Lineage) -> None:
     record.lineage_resolved_at = timezone.now()
 
 
-def replace_coverages(record: AcquiredFile, coverages: list[dict[str, Any]]) -> None:
-    FileCoverage.objects.filter(file=record).delete()
+def replace_coverages(
+    record: AcquiredFile, coverages: list[dict[str, Any]], *, first: bool = False
+) -> None:
+    """Replace the coverage rows of a dataset. ``first``: its lineage was never resolved
+    before (``lineage_resolved_at`` was empty), so it has no rows to delete."""
+    if not first:
+        FileCoverage.objects.filter(file=record).delete()
+    if not coverages:
+        return
     FileCoverage.objects.bulk_create(
         FileCoverage(
             file=record,

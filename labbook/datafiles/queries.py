@@ -107,6 +107,31 @@ def search_page(
     return [by_id[i] for i in ids if i in by_id], more
 
 
+def search_rows(
+    criteria: FileSearch, *, columns: tuple[str, ...], limit: int, offset: int = 0
+) -> tuple[list[dict], bool]:
+    """One page of a search as plain rows of ``columns``, each with its ``coverages`` (dicts
+    of material, coverage_ml, uncertainty_ml), and whether another page follows. Two queries,
+    and no model instances: building and validating 50 of them cost more than the search."""
+    rows = list(search(criteria).values(*columns)[offset : offset + limit + 1])
+    more = len(rows) > limit
+    rows = rows[:limit]
+    by_file: dict[int, list[dict]] = {row["id"]: [] for row in rows}
+    if by_file:
+        coverages = (
+            FileCoverage.objects.filter(file_id__in=list(by_file))
+            .order_by("pk")
+            .values_list("file_id", "material", "coverage_ml", "uncertainty_ml")
+        )
+        for file_id, material, coverage_ml, uncertainty_ml in coverages:
+            by_file[file_id].append(
+                {"material": material, "coverage_ml": coverage_ml, "uncertainty_ml": uncertainty_ml}
+            )
+    for row in rows:
+        row["coverages"] = by_file[row["id"]]
+    return rows, more
+
+
 def files_of_tip(tip) -> QuerySet[AcquiredFile]:
     return files().filter(tip=tip).order_by("-acquired_at", "-id")
 

@@ -148,10 +148,13 @@ def _process(file_id: int) -> str:
         current.status = AcquiredFile.Status.READY
         current.error = "\n".join(parsed.warnings)[:5000]
         current.processed_at = timezone.now()
+        # Coverage rows are only ever written with a resolved lineage (here, by a correction
+        # or a re-resolution), so a row never resolved has none to delete.
+        first_lineage = current.lineage_resolved_at is None
         store_lineage(current, found)
         current._history_user = None
         current.save()
-        replace_coverages(current, found.coverages)
+        replace_coverages(current, found.coverages, first=first_lineage)
     return AcquiredFile.Status.READY
 
 

@@ -4,8 +4,10 @@ queues again whatever is still pending (a broker outage or a killed worker)."""
 from __future__ import annotations
 
 import logging
+import math
 from datetime import datetime
 
+import numpy as np
 from celery import shared_task
 from django.core.files.base import ContentFile
 from django.core.files.storage import default_storage
@@ -162,12 +164,16 @@ def _number(value) -> float | None:
     return float(value) if isinstance(value, int | float) and not isinstance(value, bool) else None
 
 
+_PLAIN = (str, int, bool, type(None))
+
+
 def _jsonable(value):
     """JSON-ready: datetimes as ISO text, numpy scalars as numbers (header values vary)."""
-    import math
-
-    import numpy as np
-
+    kind = type(value)
+    if kind in _PLAIN:  # most values (a histogram is 256 ints): no further checks
+        return value
+    if kind is float:
+        return value if math.isfinite(value) else None
     if isinstance(value, dict):
         return {str(k): _jsonable(v) for k, v in value.items()}
     if isinstance(value, list | tuple):

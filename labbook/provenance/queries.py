@@ -174,7 +174,7 @@ def _surface_at(
                 since.append(step)
     if cleaning is not None and preparations and preparations[0].pk == cleaning.preparation_id:
         cleaning.preparation = preparations[0]
-    return sample_queries._fold(sample, at, cleaning, since)
+    return sample_queries.fold_steps(sample, at, cleaning, since)
 
 
 def _tip_state(tip: Tip, at: datetime) -> TipState:

@@ -14,7 +14,7 @@ from typing import Any
 
 from labbook.datafiles.models import AcquiredFile
 from labbook.provenance import queries
-from labbook.samples.views import _step_view
+from labbook.samples.views import step_view
 from labbook.web.templatetags.labbook_format import format_quantity, formula
 
 _STALE = {
@@ -98,7 +98,7 @@ def panel_context(record: AcquiredFile) -> Panel:
     preparations = [
         PreparationView(
             preparation=p,
-            steps=[_step_view(s) for s in p.steps.all()],
+            steps=[step_view(s) for s in p.steps.all()],
             holds_cleaning=p.pk == cleaning_prep,
         )
         for p in found.preparations

@@ -87,7 +87,7 @@ def surface_state(sample: Sample, at: datetime) -> SurfaceState:
             | Q(preparation__started_at=started, preparation_id__gt=cleaning_step.preparation_id)
             | Q(preparation_id=cleaning_step.preparation_id, position__gt=cleaning_step.position)
         )
-    return _fold(sample, at, cleaning_step, list(steps))
+    return fold_steps(sample, at, cleaning_step, list(steps))
 
 
 def surface_states_after(
@@ -105,11 +105,11 @@ def surface_states_after(
                 cleaning, since = step, []
             else:
                 since.append(step)
-        states[preparation.pk] = _fold(sample, preparation.started_at, cleaning, list(since))
+        states[preparation.pk] = fold_steps(sample, preparation.started_at, cleaning, list(since))
     return states
 
 
-def _fold(
+def fold_steps(
     sample: Sample,
     at: datetime,
     cleaning_step: PreparationStep | None,

@@ -630,7 +630,8 @@ def sample_list(request: HttpRequest) -> HttpResponse:
 @lab_member_required
 @require_GET
 def sample_detail(request: HttpRequest, pk: int) -> HttpResponse:
-    sample = get_object_or_404(queries.samples(), pk=pk)
+    # A retired sample keeps its page (datasets and provenance link to it), read-only.
+    sample = get_object_or_404(Sample, pk=pk)
     now = timezone.now()
     state = queries.surface_state(sample, now)
     location = queries.location_at(sample, now)
@@ -651,10 +652,9 @@ def sample_detail(request: HttpRequest, pk: int) -> HttpResponse:
 @lab_member_required
 @require_GET
 def preparation_detail(request: HttpRequest, pk: int) -> HttpResponse:
+    # A retired preparation keeps its page (datasets' lineage links to it), read-only.
     preparation = get_object_or_404(
-        Preparation.objects.filter(retired_at__isnull=True).select_related(
-            "sample", "instrument", "operator", "recipe"
-        ),
+        Preparation.objects.select_related("sample", "instrument", "operator", "recipe"),
         pk=pk,
     )
     steps = list(preparation.steps.order_by("position").select_related("source", "calibration"))
@@ -666,7 +666,7 @@ def preparation_detail(request: HttpRequest, pk: int) -> HttpResponse:
         "samples/preparation_detail.html",
         {
             "preparation": preparation,
-            "steps": [_step_view(step) for step in steps],
+            "steps": [step_view(step) for step in steps],
             "changes": _recipe_changes(preparation, steps),
             "logged": first_record,
         },
@@ -806,7 +806,7 @@ def _derived_lines(step: PreparationStep) -> list[ValueLine]:
     return lines
 
 
-def _step_view(step: PreparationStep, *, typed_only: bool = False) -> StepView:
+def step_view(step: PreparationStep, *, typed_only: bool = False) -> StepView:
     """A step's values and derived doses; ``typed_only`` leaves out the defaults applied to
     what was not typed (a timeline line stays short; the preparation page shows them all)."""
     kind = STEP_KINDS.get(step.kind)
@@ -861,7 +861,7 @@ class HistoryView:
 def _history_entry(entry: queries.HistoryEntry) -> HistoryView:
     view = HistoryView(at=entry.at, kind=entry.kind, record=entry.record)
     if entry.kind == "preparation":
-        view.steps = [_step_view(step, typed_only=True) for step in entry.record.steps.all()]
+        view.steps = [step_view(step, typed_only=True) for step in entry.record.steps.all()]
     return view
 
 
@@ -892,7 +892,7 @@ def _surface_view(state: queries.SurfaceState) -> SurfaceView:
             for gas, langmuir in sorted(state.exposures_langmuir.items())
         ],
         anneal_time=duration_text(state.anneal_time_s) if state.anneal_time_s else "",
-        steps=[_step_view(step, typed_only=True) for step in state.steps],
+        steps=[step_view(step, typed_only=True) for step in state.steps],
     )
 
 

@@ -43,7 +43,9 @@ def tip_list(request: HttpRequest) -> HttpResponse:
 @lab_member_required
 @require_GET
 def tip_detail(request: HttpRequest, pk: int) -> HttpResponse:
-    tip = get_object_or_404(queries.tips(), pk=pk)
+    # A retired tip keeps its page and audit (its datasets link to it), read-only: the forms
+    # are not shown and the actions behind them refuse it.
+    tip = get_object_or_404(Tip, pk=pk)
     return render(request, "tips/tip_detail.html", _page(request, tip))
 
 

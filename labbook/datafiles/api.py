@@ -71,6 +71,11 @@ class FileDetailOut(FileOut):
     given_metadata: dict[str, Any]
 
 
+#: Stats blocks only the dataset itself answers: the full statistics with the histogram
+#: (~3 KB a row) and a spectrum's traces (up to 512 points each).
+LIST_OMITTED_STATS = frozenset({"detail", "traces"})
+
+
 class FileListItem(FileOut):
     """A search result: the answer of ``GET /files/{id}`` less the ``stats.detail`` block (the
     full statistics with the histogram, ~3 KB a row) and a spectrum's ``stats.traces`` (up to
@@ -78,7 +83,7 @@ class FileListItem(FileOut):
 
     @staticmethod
     def resolve_stats(obj: AcquiredFile) -> dict[str, Any]:
-        return {key: value for key, value in obj.stats.items() if key not in ("detail", "traces")}
+        return {key: value for key, value in obj.stats.items() if key not in LIST_OMITTED_STATS}
 
 
 class FilePage(Schema):
@@ -163,9 +168,6 @@ _LIST_COLUMNS = (
     "bias_v", "setpoint_a", "temperature_k", "metadata", "stats", "instrument_id", "sample_id",
     "tip_id", "operator_id", "preparation_id", "coverage_ml", "thumbnail_name", "created_at",
 )  # fmt: skip
-#: Stats blocks only the dataset itself answers: the full statistics with the histogram
-#: (~3 KB a row) and a spectrum's traces (up to 512 points each).
-LIST_OMITTED_STATS = frozenset({"detail", "traces"})
 
 
 def _list_item(row: dict[str, Any]) -> dict[str, Any]:

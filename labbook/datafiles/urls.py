@@ -2,7 +2,7 @@
 
 from django.urls import path
 
-from labbook.datafiles import views
+from labbook.datafiles import spectrum_views, views
 
 app_name = "datafiles"
 
@@ -15,4 +15,6 @@ urlpatterns = [
     path("<int:pk>/row/", views.row_part, name="row"),
     path("<int:pk>/", views.dataset, name="dataset"),
     path("<int:pk>/correct/", views.correct, name="correct"),
+    # The stored traces of a spectrum, drawn (labbook.datafiles.spectrum_plots).
+    path("<int:pk>/spectrum.png", spectrum_views.spectrum_plot, name="spectrum_plot"),
 ]

@@ -876,6 +876,20 @@ def _spectrum_group(stats: dict[str, Any]) -> Group:
         group.lines.append(Line("Onset", _volts(stats["onset_v"])))
     if stats.get("didv_error"):
         group.lines.append(Line("dI/dV", "—", str(stats["didv_error"])))
+    label = "Normalised conductance (dI/dV)/(I/V)"
+    epsilon = stats.get("norm_conductance_epsilon_v")
+    broadened = ""
+    if _number(epsilon) is not None:
+        broadened = f"I/V broadened over ε = {prefixed(epsilon, 'V')}"
+    if stats.get("norm_conductance_min") is not None:
+        value = _span(
+            _minus(_plain_number(stats.get("norm_conductance_min"))),
+            _minus(_plain_number(stats.get("norm_conductance_max"))),
+        )
+        group.lines.append(Line(label, value, broadened))
+    elif stats.get("norm_conductance_error"):
+        why = str(stats["norm_conductance_error"])
+        group.lines.append(Line(label, "—", f"{why}; {broadened}" if broadened else why))
     return group
 
 

@@ -51,6 +51,17 @@ __all__ = [
 
 _UNIT_IN_BRACKETS = re.compile(r"^(?P<name>.*?)\s*[(\[](?P<unit>[^()\[\]]*)[)\]]\s*$")
 _UNIT_AFTER_SLASH = re.compile(r"^(?P<name>[^/]*[A-Za-z][^/]*?)\s*/\s*(?P<unit>[^/\s][^/]*)$")
+# A derivative written with a slash, "dI/dV", "d2I/dV2", "d²I/dV²", "d^2 I / d V^2": the slash is
+# part of the name, not "quantity / unit". The quantities are one or two letters (I, V, Z, Vb),
+# so "depth/dm" (a depth in decimetres) is not taken for one.
+_DERIVATIVE = re.compile(
+    r"(?<![A-Za-z0-9])d(?:\^?[0-9²³])?\s*[A-Za-z]{1,2}\s*/\s*d\s*[A-Za-z]{1,2}(?:\^?[0-9²³])?"
+    r"(?![A-Za-z0-9])"
+)
+# Stands in for a derivative's slash while the label is split (a private-use character).
+_KEPT_SLASH = "\ue000"
+# "(dI/dV)/(I/V)": a ratio of bracketed quantities, the last bracket is not a unit.
+_BRACKETED = re.compile(r"^[(\[][^()\[\]]*[)\]]$")
 _NOT_ALNUM = re.compile(r"[^0-9a-z]+")
 
 
@@ -71,15 +82,34 @@ def split_label(label: str, *, slash_unit: bool = False) -> tuple[str, str | Non
     ``"Bias (V)"`` and ``"bias [V]"`` → ``("Bias", "V")``; with ``slash_unit`` (column labels,
     where "quantity / unit" is the physicist's way of writing a column head) ``"Bias/V"`` →
     ``("Bias", "V")``. A label without a unit gives ``(label, None)``.
+
+    A derivative's slash is part of the name: ``"dI/dV"`` → ``("dI/dV", None)``,
+    ``"d2I/dV2"`` likewise, ``"dI/dV (a.u.)"`` → ``("dI/dV", "a.u.")``, and a unit after it
+    is still read, ``"dI/dV / nS"`` and ``"dI/dV/(A/V)"`` → ``("dI/dV", "nS")``,
+    ``("dI/dV", "A/V")``. A ratio of bracketed quantities, ``"(dI/dV)/(I/V)"``, is a name
+    with no unit. A bare ``"I/V"`` stays "I in volts" (a preamplifier's output is often
+    logged so): only the brackets make a ratio unambiguous.
     """
     text = label.strip().lstrip("#%").strip()
-    match = _UNIT_IN_BRACKETS.match(text)
+    masked = _DERIVATIVE.sub(lambda m: m.group(0).replace("/", _KEPT_SLASH), text)
+
+    def restored(part: str) -> str:
+        return part.replace(_KEPT_SLASH, "/").strip()
+
+    match = _UNIT_IN_BRACKETS.match(masked)
     if match and match.group("name"):
-        return match.group("name").strip(), match.group("unit").strip() or None
+        name = match.group("name").strip()
+        if name.endswith("/"):  # "dI/dV/(A/V)": the slash before a bracketed unit
+            head = name[:-1].rstrip()
+            if _BRACKETED.match(head):
+                return text, None  # "(dI/dV)/(I/V)": a ratio, no unit
+            name = head
+        if name:
+            return restored(name), restored(match.group("unit")) or None
     if slash_unit:
-        match = _UNIT_AFTER_SLASH.match(text)
+        match = _UNIT_AFTER_SLASH.match(masked)
         if match:
-            return match.group("name").strip(), match.group("unit").strip()
+            return restored(match.group("name")), restored(match.group("unit"))
     return text, None
 
 

@@ -2,11 +2,14 @@
 
 Each scenario is an automated test (pytest) that injects the fault and checks what survived:
 Redis stopped during a batch ingest, a worker killed with SIGKILL mid-task, PostgreSQL
-connections cut under load, the files volume full, the logger client cut off for an hour.
-They need PostgreSQL and Redis (redis-server is started privately on a free port; the
-machine's Redis and PostgreSQL cluster are never stopped). This prints one line a scenario:
-fault, tries, survived, lost, and the verdict of its test; known bugs (tests marked xfail
-with the proposed fix) are listed apart. The table is also written to var/bench/faults.json.
+connections cut under load, the PostgreSQL server restarted and crashed under load, the files
+volume full, the logger client cut off for an hour. They need PostgreSQL and Redis
+(redis-server is started privately on a free port, and the restarted PostgreSQL is a private
+cluster made with initdb by tests/faults/pgcluster.py; the machine's Redis and PostgreSQL
+cluster are never stopped). This prints one line a scenario: fault, tries, survived, lost,
+the verdict of its test (when the scenario names its test) and its figures; known bugs (tests
+marked xfail with the proposed fix) are listed apart. The table is also written to
+var/bench/faults.json. Arguments go to pytest: ``-k postgres_restart`` runs one scenario.
 
 ``DATABASE_URL`` is used when it points at PostgreSQL; otherwise
 ``FAULTS_DATABASE_URL`` (default ``postgresql://postgres@127.0.0.1:5432/labbook_faults``;
@@ -45,6 +48,19 @@ def _outcomes(junit: Path) -> dict[str, str]:
     return outcomes
 
 
+def _junit_key(nodeid: str) -> str:
+    """pytest's node id (tests/faults/test_x.py::test_y) as _outcomes names it."""
+    path, _, name = nodeid.partition("::")
+    return f"{path.removesuffix('.py').replace('/', '.')}::{name}"
+
+
+def _verdict(row: dict, outcomes: dict[str, str]) -> str:
+    test = row.get("test")
+    if not test:
+        return "-"
+    return outcomes.get(_junit_key(test), "?")
+
+
 def main(argv: list[str] | None = None) -> int:
     argv = sys.argv[1:] if argv is None else argv
     env = dict(os.environ)
@@ -72,11 +88,12 @@ def main(argv: list[str] | None = None) -> int:
         outcomes = _outcomes(junit) if junit.exists() else {}
 
     print()
-    print(f"{'fault':<40} {'tries':>6} {'survived':>9} {'lost':>5}  note")
+    print(f"{'fault':<40} {'tries':>6} {'survived':>9} {'lost':>5}  {'verdict':<8} note")
     for row in rows:
+        row["verdict"] = _verdict(row, outcomes)
         print(
             f"{row['fault']:<40} {row['tries']:>6} {row['survived']:>9} {row['lost']:>5}  "
-            f"{row.get('note', '')}"
+            f"{row['verdict']:<8} {row.get('note', '')}"
         )
     failed = [name for name, state in outcomes.items() if state == "failed"]
     known = [name for name, state in outcomes.items() if state == "xfailed"]

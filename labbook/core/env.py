@@ -56,6 +56,19 @@ def database_from_url(url: str, *, conn_max_age: int = 60) -> dict:
         if not name:
             raise ImproperlyConfigured(f"DATABASE_URL {url!r} names no database")
         options = dict(parse_qsl(parts.query))
+        # A database that hangs (a network partition, a stuck server) must fail fast into the
+        # clear 503, not hold a web worker until gunicorn kills it with an HTML 500: give up
+        # connecting after 5 s, and notice a dead peer on an open connection within ~30 s.
+        # The URL's own query options (?connect_timeout=…) win.
+        for key, value in (
+            ("connect_timeout", "5"),
+            ("keepalives", "1"),
+            ("keepalives_idle", "10"),
+            ("keepalives_interval", "5"),
+            ("keepalives_count", "3"),
+            ("tcp_user_timeout", "30000"),
+        ):
+            options.setdefault(key, value)
         return {
             "ENGINE": "django.db.backends.postgresql",
             "NAME": name,

@@ -99,7 +99,11 @@ def test_database_urls():
         "127.0.0.1",
         "5432",
     )
-    assert pg["OPTIONS"] == {"sslmode": "require"} and pg["CONN_MAX_AGE"] == 60
+    assert pg["OPTIONS"]["sslmode"] == "require" and pg["CONN_MAX_AGE"] == 60
+    # A hung database fails fast (tests/faults/test_database_hangs.py); the URL's own wins.
+    assert pg["OPTIONS"]["connect_timeout"] == "5" and pg["OPTIONS"]["keepalives"] == "1"
+    slow = database_from_url("postgresql://u@h/lab?connect_timeout=20")
+    assert slow["OPTIONS"]["connect_timeout"] == "20"
     assert database_from_url("sqlite:////tmp/x.sqlite3")["NAME"] == "/tmp/x.sqlite3"
     assert database_from_url("sqlite:///var/x.sqlite3")["NAME"] == "var/x.sqlite3"
     with pytest.raises(ImproperlyConfigured, match="scheme 'mysql' is not supported"):

@@ -19,10 +19,15 @@ def save_record(
 
     ``trusted``: fields the caller has just set from objects it holds (the actor as uploader,
     say), whose validation would only ask the database again whether the referenced row
-    exists. ``validate_unique=False`` where a unique constraint is enforced by the database
-    and the caller handles its IntegrityError (each check is a query of its own).
+    exists. ``validate_unique=False`` where the unique fields and the model's constraints are
+    enforced by the database and the caller handles its IntegrityError (each check is a
+    query of its own).
     """
     record._history_user = actor if getattr(actor, "is_authenticated", False) else None
-    record.full_clean(exclude=list(trusted) or None, validate_unique=validate_unique)
+    record.full_clean(
+        exclude=list(trusted) or None,
+        validate_unique=validate_unique,
+        validate_constraints=validate_unique,
+    )
     record.save()
     return record

@@ -9,7 +9,7 @@ from datetime import datetime
 from typing import Any
 
 from django.core.exceptions import ValidationError
-from django.db import transaction
+from django.db import IntegrityError, transaction
 
 from labbook.accounts.permissions import require_manager, require_member
 from labbook.core.records import save_record
@@ -276,28 +276,42 @@ def record_preparation(
         steps = steps_from_recipe(recipe)
     if ended_at is not None and ended_at < started_at:
         raise StepErrors({"ended_at": "ends before it starts"})
-    twin = Preparation.objects.filter(
-        sample=sample, instrument=instrument, started_at=started_at, retired_at__isnull=True
-    ).first()
-    if twin is not None:
+    def twin_error(twin: Preparation) -> StepErrors:
         # The same form sent twice (a double Enter, a retried request) must not log twice.
-        raise StepErrors(
+        return StepErrors(
             {"started_at": f"this sample already has a preparation at this time (#{twin.pk})"}
         )
+
+    live_twins = Preparation.objects.filter(
+        sample=sample, instrument=instrument, started_at=started_at, retired_at__isnull=True
+    )
+    twin = live_twins.first()
+    if twin is not None:
+        raise twin_error(twin)
     normalised = normalise_steps(list(steps), _context(instrument_id=instrument.pk, at=started_at))
 
-    preparation = save_record(
-        Preparation(
-            sample=sample,
-            instrument=instrument,
-            operator=operator or actor,
-            started_at=started_at,
-            ended_at=ended_at,
-            recipe=recipe,
-            notes=notes,
-        ),
-        actor,
-    )
+    try:
+        with transaction.atomic():
+            # The twin was checked above, and the database enforces it (a request running at
+            # the same time): no second check in the validation.
+            preparation = save_record(
+                Preparation(
+                    sample=sample,
+                    instrument=instrument,
+                    operator=operator or actor,
+                    started_at=started_at,
+                    ended_at=ended_at,
+                    recipe=recipe,
+                    notes=notes,
+                ),
+                actor,
+                validate_unique=False,
+            )
+    except IntegrityError:
+        twin = live_twins.first()
+        if twin is None:
+            raise
+        raise twin_error(twin) from None
     for position, step in enumerate(normalised):
         columns = {**step.values, **step.derived}
         columns["source_id"] = columns.pop("source", None)

@@ -204,6 +204,16 @@ class Preparation(LabRecord):
     class Meta:
         ordering = ["-started_at"]
         indexes = [models.Index(fields=["sample", "started_at"], name="preparation_sample_time")]
+        constraints = [
+            # The same preparation sent twice at once (a client that timed out and retried
+            # while the first request still ran) is stored once: the check in
+            # record_preparation alone could let both through.
+            models.UniqueConstraint(
+                fields=["sample", "instrument", "started_at"],
+                condition=models.Q(retired_at__isnull=True),
+                name="one_live_preparation_per_start",
+            )
+        ]
 
     def __str__(self) -> str:
         return f"{self.sample} at {self.started_at:%Y-%m-%d %H:%M}"

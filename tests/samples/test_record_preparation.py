@@ -294,3 +294,61 @@ def test_retired_records_take_no_new_preparations(member, instrument, crystal):
         )
     assert list(caught.value.errors) == ["sample"]
     assert crystal.history.first().retired_at is not None  # the retirement is in the history
+
+
+@pytest.mark.postgres
+@pytest.mark.django_db(transaction=True)
+def test_the_same_preparation_sent_twice_at_once_is_stored_once(member, instrument, monkeypatch):
+    """Two requests with the same preparation running at the same time (a client that timed
+    out and retried while the first still ran) both pass the twin check; the database's
+    constraint stores one, and the other gets the same clear error as a late duplicate."""
+    import threading
+
+    from django.db import connection, connections
+
+    from labbook.samples import actions as sample_actions
+    from labbook.samples.models import Preparation, PreparationStep
+    from labbook.samples.steps import StepErrors
+
+    if connection.vendor != "postgresql":
+        pytest.skip("needs PostgreSQL (concurrent transactions)")
+    crystal = sample_actions.create_sample(name="Ag(111) #2", substrate="Ag(111)", actor=member)
+    both_checked = threading.Barrier(2, timeout=20)
+    normalise = sample_actions.normalise_steps
+
+    def normalise_after_both_checked(*args, **kwargs):
+        both_checked.wait()  # each request has found no twin before either inserts
+        return normalise(*args, **kwargs)
+
+    monkeypatch.setattr(sample_actions, "normalise_steps", normalise_after_both_checked)
+    outcomes: list[object] = []
+
+    def send() -> None:
+        try:
+            outcomes.append(
+                sample_actions.record_preparation(
+                    sample=crystal,
+                    instrument=instrument,
+                    started_at=datetime(2026, 3, 2, 9, 0, tzinfo=UTC),
+                    steps=[{"kind": "anneal", "temperature_k": 700, "duration_s": 300}],
+                    actor=member,
+                )
+            )
+        except StepErrors as exc:
+            outcomes.append(exc)
+        finally:
+            connections.close_all()
+
+    threads = [threading.Thread(target=send) for _ in range(2)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join(30)
+    stored = [o for o in outcomes if isinstance(o, Preparation)]
+    refused = [o for o in outcomes if isinstance(o, StepErrors)]
+    assert len(stored) == 1 and len(refused) == 1, outcomes
+    assert f"already has a preparation at this time (#{stored[0].pk})" in str(
+        refused[0].errors["started_at"]
+    )
+    assert Preparation.objects.filter(sample=crystal).count() == 1
+    assert PreparationStep.objects.filter(preparation__sample=crystal).count() == 1

@@ -10,7 +10,9 @@ class ProvenanceConfig(AppConfig):
         from django.db.models.signals import post_save, pre_delete
 
         from labbook.core.models import delete_guards
-        from labbook.provenance import audit, retirement
+
+        # export_jobs registers the crate-export job handler (web and worker alike).
+        from labbook.provenance import audit, export_jobs, retirement  # noqa: F401
 
         # Records a dataset depends on are retired, never deleted (retirement.py).
         for model in retirement.PROTECTED_MODELS:

@@ -584,14 +584,59 @@ PAGE_PK_BY_NAMESPACE: dict[str, Callable[[World], int]] = {
     "samples": lambda w: w.sample.pk,
     "tips": lambda w: w.tip_mounted.pk,
 }
+
+
+def _spectrum_dataset(w: World) -> int:
+    """A spectrum with stored traces, for its plot (a topograph has none: 404), made once."""
+    if "spectrum" not in w.extra:
+        from django.test import TestCase
+
+        from labbook.datafiles.actions import ingest
+
+        buffer = io.BytesIO()
+        np.savez(buffer, bias=np.linspace(-1.0, 1.0, 101), current=np.linspace(-1e-9, 1e-9, 101))
+        with TestCase.captureOnCommitCallbacks(execute=True):
+            made = ingest(
+                io.BytesIO(buffer.getvalue()),
+                "sweep.npz",
+                metadata={"units": {"bias": "V", "current": "A"}},
+                actor=w.member,
+            )
+        w.extra["spectrum"] = made.file.pk
+    return w.extra["spectrum"]
+
+
 # The change log's tip audit (/changes/tips/<pk>/) is about a tip.
 PAGE_PARAMS_BY_NAME: dict[str, dict[str, Callable[[World], int]]] = {
+    "datafiles:spectrum_plot": {"pk": _spectrum_dataset},
     "cryo:acknowledge": {"pk": lambda w: w.alert.pk},
     "instruments:event": {"pk": lambda w: w.event.pk},
     "samples:preparation": {"pk": lambda w: w.preparation.pk},
     "logbook:end_session": {"pk": lambda w: w.session.pk},
     "audit:tip": {"pk": lambda w: w.tip_mounted.pk},
+    # A crate's pages are about a crate job (a finished one, so its ZIP can be downloaded).
+    "provenance:crate": {"job_id": lambda w: _crate_job(w)},
+    "provenance:crate_progress": {"job_id": lambda w: _crate_job(w)},
+    "provenance:crate_download": {"job_id": lambda w: _crate_job(w)},
 }
+
+
+def _crate_job(w: World) -> int:
+    """A crate job of the world's dataset, written once by its handler (as a worker would)."""
+    if "crate_job" not in w.extra:
+        from labbook.core.jobs import handler_for
+        from labbook.core.models import Job
+        from labbook.provenance.export_jobs import CRATE_JOB
+
+        job = Job.objects.create(
+            kind=CRATE_JOB, params={"ids": [w.file.pk], "name": "", "description": ""}
+        )
+        result = handler_for(CRATE_JOB)(job)
+        Job.objects.filter(pk=job.pk).update(state=Job.State.DONE, result=result)
+        w.extra["crate_job"] = job.pk
+    return w.extra["crate_job"]
+
+
 PAGE_PARAMS_BY_PARAM: dict[str, Callable[[World], int]] = {
     "instrument_id": lambda w: w.instrument.pk,
     "channel_id": lambda w: w.channel.pk,

@@ -211,6 +211,10 @@ CELERY_TASK_TIME_LIMIT = env_int("CELERY_TASK_TIME_LIMIT", 600)
 CELERY_TASK_SOFT_TIME_LIMIT = CELERY_TASK_TIME_LIMIT - 30
 CELERY_RESULT_EXPIRES = 24 * 3600
 CELERY_BROKER_CONNECTION_RETRY_ON_STARTUP = True
+#: The workers' CPU priority (a nice increment, 0–19; 0 leaves it). Processing is background
+#: work: on a small lab server it must yield the cores to the pages and the API, or a burst of
+#: uploads makes every search wait behind thumbnails (labbook/bench/load.py measures this).
+LABBOOK_WORKER_NICE = env_int("LABBOOK_WORKER_NICE", 10)
 # Redis redelivers an unacknowledged task after this long; longer than the longest task.
 CELERY_BROKER_TRANSPORT_OPTIONS = {"visibility_timeout": CELERY_TASK_TIME_LIMIT + 300}
 CELERY_TIMEZONE = "UTC"

@@ -85,11 +85,24 @@ def sweep_pending_work() -> dict[str, int]:
     return counts
 
 
+#: Where jobs write the files they make (a crate's ZIP): exports, made again on request. Only
+#: names under it are deleted with their job; an acquired file never is.
+EXPORTS_PREFIX = "exports/"
+
+
 @shared_task
 def prune_finished_jobs(days: int = 90) -> int:
-    """Finished jobs are bookkeeping, not records; keep three months of them."""
+    """Finished jobs are bookkeeping, not records; keep three months of them. A file a job
+    wrote as its output (``result["storage_name"]`` under ``exports/``) goes with it."""
+    from django.core.files.storage import default_storage
+
     cutoff = timezone.now() - timedelta(days=days)
-    deleted, _ = Job.objects.filter(state=Job.State.DONE, finished_at__lt=cutoff).delete()
+    finished = Job.objects.filter(state=Job.State.DONE, finished_at__lt=cutoff)
+    for result in finished.values_list("result", flat=True):
+        name = result.get("storage_name") if isinstance(result, dict) else None
+        if isinstance(name, str) and name.startswith(EXPORTS_PREFIX) and ".." not in name:
+            default_storage.delete(name)
+    deleted, _ = finished.delete()
     return deleted
 
 

@@ -98,3 +98,36 @@ def test_a_job_running_elsewhere_is_not_started_twice():
     job = Job.objects.create(kind="test_count", state="running", started_at=timezone.now())
     assert run_job.apply(args=[job.pk]).get()["state"] == "running"
     assert calls == []
+
+
+def test_pruning_old_jobs_removes_the_exports_they_wrote_and_nothing_else(settings, tmp_path):
+    from datetime import timedelta
+
+    from django.core.files.base import ContentFile
+    from django.core.files.storage import default_storage
+    from django.utils import timezone
+
+    from labbook.core.models import Job
+    from labbook.core.tasks import prune_finished_jobs
+
+    settings.MEDIA_ROOT = str(tmp_path / "files")
+    old = timezone.now() - timedelta(days=120)
+    export = default_storage.save("exports/crates/1-abc.zip", ContentFile(b"zip"))
+    kept_export = default_storage.save("exports/crates/2-def.zip", ContentFile(b"zip"))
+    acquired = default_storage.save("acquired/ab/cd/abcd", ContentFile(b"bytes"))
+    Job.objects.create(
+        kind="provenance.crate", state=Job.State.DONE, finished_at=old,
+        result={"storage_name": export},
+    )  # fmt: skip
+    # A finished job naming a file outside exports/ (a bug, a crafted row) never deletes it.
+    Job.objects.create(
+        kind="other", state=Job.State.DONE, finished_at=old, result={"storage_name": acquired}
+    )
+    recent = Job.objects.create(
+        kind="provenance.crate", state=Job.State.DONE, finished_at=timezone.now(),
+        result={"storage_name": kept_export},
+    )  # fmt: skip
+    assert prune_finished_jobs(days=90) == 2
+    assert not default_storage.exists(export)
+    assert default_storage.exists(acquired) and default_storage.exists(kept_export)
+    assert list(Job.objects.values_list("pk", flat=True)) == [recent.pk]

@@ -418,7 +418,6 @@ def dataset_context(record: AcquiredFile, form: CorrectionForm) -> dict[str, Any
         "metadata_groups": metadata_groups(record),
         "stat_groups": stat_groups(record),
         "lineage": lineage_view(record),
-        "history": history_view(record),
         "form": form,
         "kind_text": kind_text(record),
         "sample_given": given.get("sample") not in (None, ""),
@@ -1105,87 +1104,3 @@ def lineage_view(record: AcquiredFile) -> LineageView:
         has_instrument_state=bool(state),
     )
 
-
-# --- history ----------------------------------------------------------------------------------
-
-# What the history lists of each version: the lineage and the numbers a search finds it by.
-_TRACKED = (
-    ("status", "state"),
-    ("instrument", "instrument"),
-    ("sample", "sample"),
-    ("tip", "tip"),
-    ("operator", "operator"),
-    ("preparation", "preparation"),
-    ("acquired_at", "acquired"),
-    ("kind", "kind"),
-    ("bias_v", "bias"),
-    ("setpoint_a", "setpoint"),
-    ("coverage_ml", "total coverage"),
-)
-
-
-@dataclass
-class HistoryEntry:
-    at: datetime
-    who: str
-    what: str
-    changes: list[tuple[str, str, str]]  # label, before, after
-
-
-def _version_value(version: Any, name: str) -> str:
-    if name in ("instrument", "sample", "tip", "operator", "preparation"):
-        if getattr(version, f"{name}_id") is None:
-            return "none"
-        try:
-            related = getattr(version, name)
-        except Exception:  # noqa: BLE001 - a record gone from the table still has its id
-            return f"#{getattr(version, f'{name}_id')}"
-        if name == "operator":
-            return _person(related)
-        if name == "preparation":
-            return f"preparation of {lab_time(related.started_at)}"
-        return str(related)
-    value = getattr(version, name)
-    if value is None:
-        return "—"
-    if name == "acquired_at":
-        return lab_time(value)
-    if name == "bias_v":
-        return in_unit(value, "V")
-    if name == "setpoint_a":
-        return in_unit(value, "pA", 1e12)
-    if name == "coverage_ml":
-        return _plain(format_quantity(value, "ML"))
-    return str(value)
-
-
-def history_view(record: AcquiredFile) -> list[HistoryEntry]:
-    """Every version of the record, newest first, with what changed from the one before."""
-    versions = list(
-        record.history.order_by("history_date", "history_id").select_related("history_user")
-    )
-    entries: list[HistoryEntry] = []
-    previous = None
-    for version in versions:
-        who = _person(version.history_user) if version.history_user else "labbook (processing)"
-        if previous is None:
-            entries.append(HistoryEntry(version.history_date, who, "Came in", []))
-        else:
-            changes = []
-            for name, label in _TRACKED:
-                before, after = _version_value(previous, name), _version_value(version, name)
-                if before != after:
-                    changes.append((label, before, after))
-            if (
-                version.history_user is None
-                and previous.status == "pending"
-                and version.status != "pending"
-            ):
-                what = "Processed"
-            elif version.history_user is not None:
-                what = "Corrected"
-            else:
-                what = "Changed"
-            entries.append(HistoryEntry(version.history_date, who, what, changes))
-        previous = version
-    return list(reversed(entries))

@@ -530,8 +530,10 @@ def test_correcting_the_tip_resolves_the_lineage_again_and_keeps_both_in_history
     assert "tip W-21 → PtIr-4" in text  # the message says what changed
     assert f'href="/tips/{lab["other_tip"].pk}/"' in section(page, "lineage")
     assert "as given with the file" in section(page, "lineage")
-    history = section(page, "history")
-    assert "Corrected" in history and "Bo Ferrand" in history
+    # One history card on the page: the change log's, with the correction and who made it.
+    assert 'id="history"' not in text
+    history = section(page, "changes")
+    assert "by Bo Ferrand" in history
     assert "W-21" in history and "PtIr-4" in history
     assert topograph.history.count() == 3  # came in, processed, corrected
 

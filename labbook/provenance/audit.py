@@ -199,6 +199,35 @@ def _format(value: Any, fld: models.Field, names: dict[tuple[type, Any], str]) -
     return str(value)
 
 
+#: Most keys named when a JSON field (a dataset's lineage, statistics, metadata) changes.
+_KEYS_SHOWN = 6
+
+
+def _size_text(value: Any) -> str:
+    if isinstance(value, dict):
+        return f"{len(value)} entr{'y' if len(value) == 1 else 'ies'}"
+    if isinstance(value, list):
+        return f"{len(value)} item{'' if len(value) == 1 else 's'}"
+    return "—" if value in (None, "") else str(value)
+
+
+def _format_pair(
+    old: Any, new: Any, fld: models.Field, names: dict[tuple[type, Any], str]
+) -> tuple[str, str]:
+    """(was, now) as people read them. A JSON value (a lineage snapshot, statistics with a
+    256-bin histogram) is not printed whole: its size, and which of its keys changed."""
+    if not isinstance(old, dict | list) and not isinstance(new, dict | list):
+        return _format(old, fld, names), _format(new, fld, names)
+    if isinstance(old, dict) and isinstance(new, dict):
+        keys = sorted(
+            k for k in set(old) | set(new) if k not in old or k not in new or old[k] != new[k]
+        )
+        shown = ", ".join(keys[:_KEYS_SHOWN])
+        more = f" and {len(keys) - _KEYS_SHOWN} more" if len(keys) > _KEYS_SHOWN else ""
+        return _size_text(old), f"{_size_text(new)}; changed: {shown}{more}"
+    return _size_text(old), _size_text(new)
+
+
 def _action(row, previous) -> str:
     if row.history_type == "+":
         return "created"
@@ -269,10 +298,7 @@ def _entries(pairs: list[tuple[str, Any, Any]]) -> list[HistoryEntry]:
                 url=record_url(key, row),
                 changes=[
                     FieldChange(
-                        fld.name,
-                        str(fld.verbose_name),
-                        _format(old, fld, names),
-                        _format(new, fld, names),
+                        fld.name, str(fld.verbose_name), *_format_pair(old, new, fld, names)
                     )
                     for fld, old, new in diffs
                 ],

@@ -123,7 +123,9 @@ def crate_new(request: HttpRequest) -> HttpResponse:
     every problem named; nothing typed or ticked is dropped."""
     source = request.POST if request.method == "POST" else request.GET
     more = str(source.get("more_ids", ""))
-    ids = [i for i in source.getlist("ids") if str(i).strip()]
+    # Ticked boxes send one id each; a link may send several at once (?ids=12,15).
+    ids = [part for value in source.getlist("ids") for part in re.split(r"[\s,;]+", str(value))]
+    ids = [i for i in ids if i]
     # Ids typed on the crate page ("12, 15 17"), for datasets not on the search page at hand.
     ids += [i for i in re.split(r"[\s,;]+", more) if i]
     name = str(source.get("name", ""))

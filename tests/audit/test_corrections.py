@@ -132,3 +132,18 @@ def test_the_tip_audit_points_out_a_stored_state_that_is_out_of_date(lab):
 
     audit = tip_audit(lab.tip)
     assert [g.stale for g in audit.groups] == [[], [record.pk]]
+
+
+def test_a_json_field_change_names_the_keys_it_changed_not_the_whole_value():
+    from labbook.datafiles.models import AcquiredFile
+    from labbook.provenance.audit import _format_pair
+
+    lineage = AcquiredFile._meta.get_field("lineage")
+    before = {"tip_state": {"tip": 1}, "surface_state": {"coverages": []}, "flags": []}
+    after = {"tip_state": {"tip": 2}, "surface_state": {"coverages": []}, "flags": [], "x": 1}
+    was, now = _format_pair(before, after, lineage, {})
+    assert (was, now) == ("3 entries", "4 entries; changed: tip_state, x")
+    many_old = {f"k{i}": i for i in range(10)}
+    many_new = {f"k{i}": i + 1 for i in range(10)}
+    assert _format_pair(many_old, many_new, lineage, {})[1].endswith("k5 and 4 more")
+    assert _format_pair(None, [1, 2], lineage, {}) == ("—", "2 items")

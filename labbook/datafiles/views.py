@@ -100,7 +100,13 @@ def search(request: HttpRequest) -> HttpResponse:
     if valid:
         criteria = queries.FileSearch(**form.criteria()) if form.is_bound else queries.FileSearch()
         found = _ordered(queries.search(criteria), sort)
-        found = found.select_related("sample", "instrument").prefetch_related("coverages")
+        # A tile shows none of the JSON columns but the metadata as sent (a pending file's
+        # kind): the statistics with their histogram, the lineage and the header stay unread.
+        found = (
+            found.select_related("sample", "instrument")
+            .prefetch_related("coverages")
+            .defer("stats", "lineage", "raw_header", "metadata")
+        )
         offset = (page - 1) * PER_PAGE
         chunk = list(found[offset : offset + PER_PAGE + 1])
         more = len(chunk) > PER_PAGE

@@ -161,6 +161,33 @@ def test_the_query_string_round_trips_into_the_form(member, four_files):
     assert "filtered by bias from, bias to, coverage from, coverage of" in text
 
 
+def test_a_chosen_sample_tip_and_instrument_stay_selected_in_few_queries(
+    member, manager, instrument, four_files, django_assert_max_num_queries
+):
+    from labbook.samples.actions import create_sample
+    from labbook.tips.actions import create_tip
+
+    samples = [
+        create_sample(name=f"Cu(111) #{i}", substrate="Cu(111)", actor=member) for i in (1, 2)
+    ]
+    tips = [create_tip(name=f"W-{i}", material="W", origin="etched", actor=member) for i in (1, 2)]
+    client = as_client(member)
+    params = {"sample": samples[1].pk, "tip": tips[0].pk, "instrument": instrument.pk}
+    # Session, user, groups; the three selects' options one query each (no count and no
+    # cursor per select: 6 more before), the three chosen ids checked, the adsorbates, the
+    # page and its coverages.
+    with django_assert_max_num_queries(12):
+        text = html(client.get("/datasets/", params))
+    assert f'<option value="{samples[1].pk}" selected>Cu(111) #2</option>' in text
+    assert f'<option value="{samples[0].pk}">Cu(111) #1</option>' in text
+    assert f'<option value="{tips[0].pk}" selected>W-1</option>' in text
+    assert f'<option value="{instrument.pk}" selected>' in text
+    assert '<option value="" >any sample</option>' in text or '<option value="">any sample' in text
+    # A chosen id that is not offered is refused beside its field, as before.
+    wrong = html(client.get("/datasets/", {"sample": 999999}))
+    assert "Select a valid choice" in wrong
+
+
 def test_pages_go_by_limit_plus_one_and_keep_the_filters(member, four_files, monkeypatch):
     from labbook.datafiles import views
 

@@ -37,6 +37,7 @@ from labbook.samples.forms import lab_zone
 from labbook.samples.views import duration_text, with_uncertainty
 from labbook.tips.models import Conditioning
 from labbook.tips.views import param_label, param_text
+from labbook.web.polling import poll_every, polls_so_far
 from labbook.web.templatetags.labbook_format import (
     NBSP,
     format_age,
@@ -280,20 +281,6 @@ def upload(request: HttpRequest) -> HttpResponse:
     )
 
 
-# How often a pending row asks again: every second at first, then less often, so a row left
-# open while no worker runs (a broker outage) does not ask forever at 1 Hz.
-_FAST_POLLS = 120
-
-
-def _poll_every(polls: int) -> str:
-    return "1s" if polls < _FAST_POLLS else "10s"
-
-
-def _polls(request: HttpRequest) -> int:
-    text = str(request.GET.get("polls", "0"))
-    return min(int(text), 10_000) if text.isdigit() else 0
-
-
 @lab_member_required
 @require_GET
 def row_part(request: HttpRequest, pk: int) -> HttpResponse:
@@ -314,11 +301,11 @@ def row_part(request: HttpRequest, pk: int) -> HttpResponse:
         record=record,
         tile=tile(record),
     )
-    polls = _polls(request) + 1
+    polls = polls_so_far(request) + 1
     return render(
         request,
         "datafiles/_upload_row.html",
-        {"row": row, "batch": token, "polls": polls, "poll_every": _poll_every(polls)},
+        {"row": row, "batch": token, "polls": polls, "poll_every": poll_every(polls)},
     )
 
 
@@ -328,7 +315,7 @@ def progress_part(request: HttpRequest) -> HttpResponse:
     """htmx: "n of m processed" for a batch; it stops asking once every file is processed."""
     token = str(request.GET.get("batch", ""))
     outcomes = _batch(request, token) or []
-    polls = _polls(request) + 1
+    polls = polls_so_far(request) + 1
     return render(
         request,
         "datafiles/_progress.html",
@@ -336,7 +323,7 @@ def progress_part(request: HttpRequest) -> HttpResponse:
             "progress": _progress(outcomes),
             "batch": token,
             "polls": polls,
-            "poll_every": _poll_every(polls),
+            "poll_every": poll_every(polls),
             "announce": True,
         },
     )

@@ -28,19 +28,7 @@ from labbook.provenance.export_jobs import (
     CrateRequestError,
     request_crate,
 )
-
-# As the upload's progress: every second at first, then every ten, so a page left open while
-# no worker runs (a broker outage) does not ask forever at 1 Hz.
-_FAST_POLLS = 120
-
-
-def _poll_every(polls: int) -> str:
-    return "1s" if polls < _FAST_POLLS else "10s"
-
-
-def _polls(request: HttpRequest) -> int:
-    text = str(request.GET.get("polls", "0"))
-    return min(int(text), 10_000) if text.isdigit() else 0
+from labbook.web.polling import poll_every, polls_so_far
 
 
 def _see_other(url: str) -> HttpResponse:
@@ -167,7 +155,7 @@ def _page_context(job: Job, polls: int = 0) -> dict[str, Any]:
         "status": crate_status(job),
         "title": crate_title(job),
         "polls": polls,
-        "poll_every": _poll_every(polls),
+        "poll_every": poll_every(polls),
     }
 
 
@@ -196,7 +184,7 @@ def crate_progress(request: HttpRequest, job_id: int) -> HttpResponse:
     """htmx: the crate's progress; the answer for a finished job has no trigger, so the
     polling stops."""
     job = _crate_job(job_id)
-    context = _page_context(job, _polls(request) + 1)
+    context = _page_context(job, polls_so_far(request) + 1)
     context["announce"] = True
     return render(request, "provenance/_crate_progress.html", context)
 

@@ -94,19 +94,6 @@ def search(criteria: FileSearch) -> QuerySet[AcquiredFile]:
     return found.order_by("-acquired_at", "-id")
 
 
-def search_page(
-    criteria: FileSearch, *, limit: int, offset: int = 0
-) -> tuple[list[AcquiredFile], bool]:
-    """One page of a search and whether another follows, in two steps: the ids from the
-    covering newest-first index (no row is read to test a filter), then just those rows."""
-    ids = list(search(criteria).values_list("id", flat=True)[offset : offset + limit + 1])
-    more = len(ids) > limit
-    ids = ids[:limit]
-    rows = AcquiredFile.objects.filter(id__in=ids).prefetch_related("coverages")
-    by_id = {row.pk: row for row in rows}
-    return [by_id[i] for i in ids if i in by_id], more
-
-
 def search_rows(
     criteria: FileSearch, *, columns: tuple[str, ...], limit: int, offset: int = 0
 ) -> tuple[list[dict], bool]:

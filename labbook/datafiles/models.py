@@ -5,8 +5,13 @@ from __future__ import annotations
 
 from django.conf import settings
 from django.db import models
+from django.db.models import F
+from django.db.models.functions import Floor
 
 from labbook.core.models import LabRecord
+
+#: Width of a bias band (V) of the banded search index: a 0.1 V range touches one or two.
+BIAS_BAND_V = 0.1
 
 
 class AcquiredFile(LabRecord):
@@ -54,6 +59,13 @@ class AcquiredFile(LabRecord):
     kind = models.CharField(max_length=12, choices=Kind.choices, default=Kind.OTHER)
     acquired_at = models.DateTimeField(null=True, blank=True)
     bias_v = models.FloatField(null=True, blank=True)
+    # floor(bias_v / BIAS_BAND_V): the search for a bias range walks one newest-first index run
+    # per band and merges them (queries.page_ids_sql), instead of walking every dataset's entry.
+    bias_band = models.GeneratedField(
+        expression=Floor(F("bias_v") / BIAS_BAND_V),
+        output_field=models.FloatField(),
+        db_persist=True,
+    )
     setpoint_a = models.FloatField(null=True, blank=True)
     temperature_k = models.FloatField(null=True, blank=True)
     channel_name = models.CharField(max_length=100, blank=True)
@@ -128,6 +140,23 @@ class AcquiredFile(LabRecord):
                     "tip_id",
                 ],
                 name="file_newest_covering",
+            ),
+            # The same, one run per bias band: a bias-range search merges a few runs newest
+            # first and skips ~10–20× fewer entries than on file_newest_covering.
+            models.Index(
+                fields=["bias_band", "-acquired_at", "-id"],
+                include=[
+                    "bias_v",
+                    "coverage_ml",
+                    "setpoint_a",
+                    "retired_at",
+                    "kind",
+                    "status",
+                    "instrument_id",
+                    "sample_id",
+                    "tip_id",
+                ],
+                name="file_bias_band_newest",
             ),
             models.Index(fields=["setpoint_a"], name="file_setpoint"),
             models.Index(fields=["status", "queued_at"], name="file_status_queued"),

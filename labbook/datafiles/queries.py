@@ -3,12 +3,19 @@ and the datasets of a tip, a sample or an instrument."""
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from datetime import datetime
 
 from django.db.models import Exists, OuterRef, Q, QuerySet
+from django.db.models.expressions import RawSQL
 
-from labbook.datafiles.models import AcquiredFile, FileCoverage
+from labbook.datafiles.models import BIAS_BAND_V, AcquiredFile, FileCoverage
+
+#: A bias range over more bands than this is searched on the plain newest-first index: it
+#: matches enough datasets that a page is found after a short walk there anyway, and every
+#: band is one more branch to plan.
+MAX_BIAS_BANDS = 12
 
 
 @dataclass(frozen=True)
@@ -94,13 +101,66 @@ def search(criteria: FileSearch) -> QuerySet[AcquiredFile]:
     return found.order_by("-acquired_at", "-id")
 
 
+def _bias_bands(criteria: FileSearch) -> range | None:
+    """The bias bands (AcquiredFile.bias_band) a closed bias range covers, or None."""
+    low, high = criteria.bias_min, criteria.bias_max
+    if low is None or high is None or not (math.isfinite(low) and math.isfinite(high)):
+        return None
+    if low > high:
+        return None
+    # The same IEEE division as the column's floor(bias_v / BIAS_BAND_V): the bands agree.
+    first, last = math.floor(low / BIAS_BAND_V), math.floor(high / BIAS_BAND_V)
+    if last - first + 1 > MAX_BIAS_BANDS:
+        return None
+    return range(first, last + 1)
+
+
+def page_ids_sql(criteria: FileSearch, *, offset: int, limit: int) -> tuple[str, tuple]:
+    """SQL and parameters for the ids of one page of a search, newest first.
+
+    With a closed bias range over a few bands, it is one branch per band under UNION ALL:
+    PostgreSQL then merges the bands' runs of file_bias_band_newest (each already newest
+    first) and stops after the page, where walking file_newest_covering skips every dataset
+    outside the bias range (10–20× more entries for a 0.1 V range in 2 V).
+    """
+    found = search(criteria)
+    bands = _bias_bands(criteria)
+    if bands is None:
+        query = found.values_list("id", flat=True)[offset : offset + limit].query
+        return query.sql_with_params()
+    branches, params = [], []
+    for band in bands:
+        # Each branch sorted and limited on its own: that order is what lets the planner merge
+        # the branches lazily (a Merge Append) instead of reading them all and sorting.
+        branch = found.filter(bias_band=band).values_list("id", "acquired_at")
+        sql, branch_params = branch[: offset + limit].query.sql_with_params()
+        # Only SQL the ORM compiled, with its parameters kept apart, and an integer alias.
+        branches.append(f'SELECT "id", "acquired_at" FROM ({sql}) AS band_{band - bands[0]}')  # noqa: S608
+        params.extend(branch_params)
+    sql = (
+        f'SELECT "id" FROM ({" UNION ALL ".join(branches)}) AS banded '  # noqa: S608
+        'ORDER BY "acquired_at" DESC, "id" DESC LIMIT %s OFFSET %s'
+    )
+    return sql, (*params, limit, offset)
+
+
+def newest_page(criteria: FileSearch, *, offset: int, limit: int) -> QuerySet[AcquiredFile]:
+    """One page of a search, newest first, as a queryset to pick columns and relations from
+    (it is already limited: do not slice it again)."""
+    if _bias_bands(criteria) is None:
+        return search(criteria)[offset : offset + limit]
+    sql, params = page_ids_sql(criteria, offset=offset, limit=limit)
+    ids = RawSQL(sql, params)  # noqa: S611 - compiled by the ORM above, parameters apart
+    return AcquiredFile.objects.filter(pk__in=ids).order_by("-acquired_at", "-id")
+
+
 def search_rows(
     criteria: FileSearch, *, columns: tuple[str, ...], limit: int, offset: int = 0
 ) -> tuple[list[dict], bool]:
     """One page of a search as plain rows of ``columns``, each with its ``coverages`` (dicts
     of material, coverage_ml, uncertainty_ml), and whether another page follows. Two queries,
     and no model instances: building and validating 50 of them cost more than the search."""
-    rows = list(search(criteria).values(*columns)[offset : offset + limit + 1])
+    rows = list(newest_page(criteria, offset=offset, limit=limit + 1).values(*columns))
     more = len(rows) > limit
     rows = rows[:limit]
     by_file: dict[int, list[dict]] = {row["id"]: [] for row in rows}

@@ -100,7 +100,11 @@ def search(request: HttpRequest) -> HttpResponse:
     sort = form.order if form.is_bound and valid else "newest"
     if valid:
         criteria = queries.FileSearch(**form.criteria()) if form.is_bound else queries.FileSearch()
-        found = _ordered(queries.search(criteria), sort)
+        offset = (page - 1) * PER_PAGE
+        if sort == "newest":
+            found = queries.newest_page(criteria, offset=offset, limit=PER_PAGE + 1)
+        else:
+            found = _ordered(queries.search(criteria), sort)[offset : offset + PER_PAGE + 1]
         # A tile shows none of the JSON columns but the metadata as sent (a pending file's
         # kind): the statistics with their histogram, the lineage and the header stay unread.
         found = (
@@ -108,8 +112,7 @@ def search(request: HttpRequest) -> HttpResponse:
             .prefetch_related("coverages")
             .defer("stats", "lineage", "raw_header", "metadata")
         )
-        offset = (page - 1) * PER_PAGE
-        chunk = list(found[offset : offset + PER_PAGE + 1])
+        chunk = list(found)
         more = len(chunk) > PER_PAGE
         tiles = [tile(record) for record in chunk[:PER_PAGE]]
     first = (page - 1) * PER_PAGE + 1
@@ -1096,4 +1099,3 @@ def lineage_view(record: AcquiredFile) -> LineageView:
         events=events,
         has_instrument_state=bool(state),
     )
-

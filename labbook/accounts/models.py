@@ -17,8 +17,8 @@ def hash_token(raw: str) -> str:
 
 
 class ApiTokenQuerySet(models.QuerySet):
-    def active(self):
-        now = timezone.now()
+    def active(self, now=None):
+        now = timezone.now() if now is None else now
         return self.filter(revoked_at__isnull=True).filter(
             models.Q(expires_at__isnull=True) | models.Q(expires_at__gt=now)
         )

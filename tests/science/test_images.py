@@ -143,6 +143,36 @@ def test_even_row_median_matches_numpy():
     assert z - flat == pytest.approx(np.broadcast_to(np.median(z, axis=1)[:, None], z.shape))
 
 
+def row_median_cases():
+    """Finite blocks that stress the float32 ranking of the row medians: distinct values,
+    values closer than float32 resolves (ties there, not in float64), quantised and
+    constant rows, values beyond float32's range (±inf there) and below it (zero there)."""
+    rng = np.random.default_rng(5)
+    yield "normal even", rng.standard_normal((64, 512))
+    yield "normal odd", rng.standard_normal((64, 301))
+    near = 1.0 + rng.integers(0, 3, (64, 512)) * 1e-12 + rng.integers(0, 50, (64, 512)) * 1e-9
+    yield "float32 ties", near  # 1e-12 apart: one float32 value, three float64 ones
+    few = rng.standard_normal((64, 512))
+    few[:3] = 1.0 + rng.integers(0, 4, (3, 512)) * 1e-13  # only three rows tie
+    yield "few tied rows", few
+    yield "quantised", rng.integers(-5, 5, (64, 512)).astype(np.float64)
+    yield "constant", np.full((8, 512), -2.5)
+    yield "beyond float32", rng.standard_normal((16, 512)) * 1e300
+    yield "below float32", rng.standard_normal((16, 512)) * 1e-300
+    yield "one pixel rows", rng.standard_normal((16, 1))
+    yield "two pixel rows", rng.standard_normal((16, 2))
+    yield "long rows", rng.standard_normal((4, 2001))  # beyond _SORTED_ROW_MAX: partitioned
+
+
+def test_row_medians_equal_numpy_bit_for_bit():
+    # outside reference: numpy.median along rows (float64); equality, not approximate: the
+    # float32 ranking must pick the float64 order statistics themselves
+    for name, block in row_median_cases():
+        scratch = np.empty_like(block)
+        got = images._row_medians(block, scratch)
+        np.testing.assert_array_equal(got, np.median(block, axis=1), err_msg=name)
+
+
 def test_linear_line_flattening_matches_polyfit():
     # outside reference: numpy.polyfit(x, row, 1) per line
     x = np.arange(50.0)
@@ -456,7 +486,7 @@ def test_statistics_and_thumbnail_memory_stay_bounded():
     finally:
         tracemalloc.stop()
     extra_mib = (peak - start) / 2**20
-    assert extra_mib < 4 * 1.25 + 10  # one float32 copy (+25 %) and the 8 MiB of block buffers
+    assert extra_mib < 4 * 1.25 + 10  # one float32 copy (+25 %) and the 10 MiB of block buffers
 
 
 finite_images = hnp.arrays(

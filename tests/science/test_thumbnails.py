@@ -106,6 +106,77 @@ def test_percentiles_match_numpy():
     assert got == pytest.approx(np.nanpercentile(values, [1, 99]), rel=1e-12)
 
 
+def percentile_cases():
+    """Arrays that stress the guarded selection: smooth, heavy-tailed, tied, constant, NaN,
+    sorted, tiny, and ones whose strided or sampled pixels are unrepresentative."""
+    rng = np.random.default_rng(11)
+    n = 300_000
+    yield "normal", rng.standard_normal(n).astype(np.float32)
+    yield "cauchy", rng.standard_cauchy(n)
+    yield "quantised", rng.integers(0, 40, n).astype(np.float32)  # heavy ties
+    yield "two levels", np.repeat([0.0, 1.0], n // 2)
+    yield "constant", np.full(n, 3.5, dtype=np.float32)
+    yield "ascending", np.arange(n, dtype=np.float64)
+    yield "descending", np.arange(n, dtype=np.float32)[::-1].copy()
+    spiky = rng.standard_normal(n)
+    spiky[::37] = 1e6  # every 37th pixel a spike: 2.7 % of them, beyond the 99th percentile
+    yield "spiky", spiky
+    with_nan = rng.standard_normal(n).astype(np.float32)
+    with_nan[rng.random(n) < 0.3] = np.nan
+    yield "30 % NaN", with_nan
+    mostly_nan = rng.standard_normal(n)
+    mostly_nan[: n - 40_000] = np.nan  # an aborted scan: the sample sees few finite pixels
+    yield "mostly NaN", mostly_nan
+    lattice = np.cos(2 * np.pi * np.arange(n) / 12.8) + 1e-3 * rng.standard_normal(n)
+    yield "lattice", lattice
+    for size in (1, 2, 3, 7, 1000):
+        yield f"tiny {size}", rng.standard_normal(size)
+    # Adversarial for the sample: the pixels it looks at are all large, so its guess for
+    # the high guard is far too high (the answer must still be exact).
+    tricky = rng.standard_normal(n)
+    tricky[thumbnails._sample_positions(n)] = 50.0 + rng.random(thumbnails._GUARD_SAMPLE)
+    yield "sample-adversarial", tricky
+
+
+@pytest.mark.parametrize("clip", [(1, 99), (0, 100), (2.5, 97.5), (0.1, 99.9), (49, 51)])
+def test_percentiles_equal_numpy_bit_for_bit(clip):
+    # outside reference: numpy.nanpercentile (default "linear" method) in float64; equality,
+    # not approximate: the guarded selection finds the same ranks and interpolates as numpy
+    for name, values in percentile_cases():
+        finite = int(np.count_nonzero(~np.isnan(values)))
+        expected = np.nanpercentile(values.astype(np.float64), clip)
+        got = thumbnails._percentiles(values.copy(), finite, *clip)
+        assert got == (expected[0], expected[1]), name
+
+
+def test_guarded_selection_is_used_and_falls_back_when_fooled():
+    # the fast path must be the one a normal image takes, and a fooled guess must be caught
+    cases = dict(percentile_cases())
+    for name, expected_path in (("normal", True), ("sample-adversarial", False)):
+        values = cases[name]
+        n = values.size
+        low, high = thumbnails._linear_rank(1, n), thumbnails._linear_rank(99, n)
+        kept = values.copy()
+        found = thumbnails._guarded_statistics(kept, n, low[:2], high[:2])
+        assert (found is not None) == expected_path, name
+        np.testing.assert_array_equal(kept, values)  # never reordered
+        if found is not None:
+            # outside reference: numpy.sort gives the order statistics directly
+            ordered = np.sort(values.astype(np.float64))
+            assert found == tuple(ordered[[low[0], low[1], high[0], high[1]]])
+
+
+def test_thumbnail_is_the_same_whichever_way_the_percentiles_are_found(monkeypatch):
+    # the in-place mapping of the intact levelled copy and the re-levelling after a full
+    # partition must give the same bytes (both are exact), at 512² and for a 2-block image
+    for z in (terraces(512, 512), terraces(600, 500)):
+        fast = thumbnails.thumbnail_png(z)
+        with monkeypatch.context() as patch:
+            patch.setattr(thumbnails, "_guarded_statistics", lambda *args: None)
+            slow = thumbnails.thumbnail_png(z)
+        assert fast == slow
+
+
 def test_palette_comes_from_the_colormap_table():
     import matplotlib
 

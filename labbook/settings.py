@@ -215,6 +215,9 @@ CELERY_BROKER_CONNECTION_RETRY_ON_STARTUP = True
 #: work: on a small lab server it must yield the cores to the pages and the API, or a burst of
 #: uploads makes every search wait behind thumbnails (labbook/bench/load.py measures this).
 LABBOOK_WORKER_NICE = env_int("LABBOOK_WORKER_NICE", 10)
+# The dashboard's refill plan is made again at most this often (0: on every load); a logged
+# refill or a changed cryostat or calendar makes a new one at once (labbook.cryo.queries).
+LABBOOK_DASHBOARD_PLAN_SECONDS = env_int("LABBOOK_DASHBOARD_PLAN_SECONDS", 60)
 # Redis redelivers an unacknowledged task after this long; longer than the longest task.
 CELERY_BROKER_TRANSPORT_OPTIONS = {"visibility_timeout": CELERY_TASK_TIME_LIMIT + 300}
 CELERY_TIMEZONE = "UTC"

@@ -113,6 +113,12 @@ def _plain_static_files(settings):
 
 
 @pytest.fixture(autouse=True)
+def _fresh_dashboard_plan(settings):
+    """Tests see every reading on the next dashboard load; one test checks the reuse."""
+    settings.LABBOOK_DASHBOARD_PLAN_SECONDS = 0
+
+
+@pytest.fixture(autouse=True)
 def _eager_celery(request):
     """Unit tests run tasks in-process even when a broker is configured; the tests marked
     ``worker`` switch this off and talk to a real worker."""

@@ -7,13 +7,16 @@ the logged refills, turns them into arrays and dataclasses, and hands them over.
 
 from __future__ import annotations
 
+import hashlib
 from dataclasses import dataclass, field
 from datetime import UTC, date, datetime, timedelta
 
 import numpy as np
-from django.db.models import QuerySet
+from django.conf import settings
+from django.core.cache import cache
+from django.db.models import Count, Max, QuerySet
 
-from labbook.cryo.models import Alert, Cryostat, LabCalendar, Refill
+from labbook.cryo.models import Alert, Cryostat, Holiday, LabCalendar, Refill
 from labbook.instruments.models import InstrumentEvent, Reading
 from labbook.science import cryogen as sc
 from labbook.science.errors import ScienceInputError
@@ -428,25 +431,62 @@ def open_alerts(instrument=None) -> QuerySet[Alert]:
     return found.order_by("-opened_at")
 
 
+def _panel_rows(chosen: list[Cryostat], now: datetime) -> dict[int, dict]:
+    """Each cryostat's forecast level, next planned refill and why it has none, by pk."""
+    plan = lab_plan(now, 2)
+    skipped = {c.pk: reason for c, reason in plan.skipped}
+    rows = {}
+    for cryostat in chosen:
+        fc = plan.forecasts.get(str(cryostat.pk))
+        upcoming = [r for r in plan.refills if r.cryostat == str(cryostat.pk)]
+        rows[cryostat.pk] = {
+            "level_l": fc.level_l if fc else None,
+            "next": upcoming[0] if upcoming else None,
+            "error": skipped.get(cryostat.pk, ""),
+        }
+    return rows
+
+
+def _plan_inputs_signature(chosen: list[Cryostat]) -> str:
+    """What the plan depends on besides the level readings: the cryostats as configured, the
+    logged refills (rows and cryogen-transfer events) and the calendar. A change to any of
+    them makes a new plan at once."""
+    refills = Refill.objects.aggregate(n=Count("pk"), last=Max("updated_at"))
+    transfers = InstrumentEvent.objects.filter(
+        kind=InstrumentEvent.Kind.CRYOGEN_TRANSFER
+    ).aggregate(n=Count("pk"), last=Max("updated_at"))
+    calendars = LabCalendar.objects.aggregate(n=Count("pk"), last=Max("updated_at"))
+    holidays = Holiday.objects.aggregate(n=Count("pk"), last=Max("updated_at"))
+    parts = [(c.pk, c.updated_at, c.level_channel_id) for c in chosen]
+    text = repr((parts, refills, transfers, calendars, holidays))
+    return hashlib.sha256(text.encode()).hexdigest()[:32]
+
+
 def dashboard_panel(now: datetime) -> dict:
-    """For the dashboard: each cryostat's level and next planned refill, and the open alerts."""
+    """For the dashboard: each cryostat's level and next planned refill, and the open alerts.
+
+    The plan fits four weeks of level readings per cryostat (tens of milliseconds); the
+    dashboard reuses one for ``LABBOOK_DASHBOARD_PLAN_SECONDS`` (``planned_at`` says when it
+    was made), unless a cryostat, a logged refill or the calendar changed in between.
+    """
     zone = lab_calendar().time_zone
     chosen = list(cryostats())
     if not chosen:
-        return {"rows": [], "alerts": list(open_alerts()), "zone": zone}
-    plan = lab_plan(now, 2)
-    skipped = {c.pk: reason for c, reason in plan.skipped}
-    rows = []
-    for cryostat in chosen:
-        key = str(cryostat.pk)
-        fc = plan.forecasts.get(key)
-        upcoming = [r for r in plan.refills if r.cryostat == key]
-        rows.append(
-            {
-                "cryostat": cryostat,
-                "level_l": fc.level_l if fc else None,
-                "next": upcoming[0] if upcoming else None,
-                "error": skipped.get(cryostat.pk, ""),
-            }
-        )
-    return {"rows": rows, "alerts": list(open_alerts()), "zone": zone}
+        return {"rows": [], "alerts": list(open_alerts()), "zone": zone, "planned_at": now}
+    seconds = settings.LABBOOK_DASHBOARD_PLAN_SECONDS
+    planned = None
+    if seconds > 0:
+        key = f"cryo.dashboard_plan.{_plan_inputs_signature(chosen)}"
+        planned = cache.get(key)
+    if planned is None:
+        planned = {"at": now, "rows": _panel_rows(chosen, now)}
+        if seconds > 0:
+            cache.set(key, planned, seconds)
+    rows = [
+        {"cryostat": cryostat, **planned["rows"].get(cryostat.pk, _NOT_PLANNED)}
+        for cryostat in chosen
+    ]
+    return {"rows": rows, "alerts": list(open_alerts()), "zone": zone, "planned_at": planned["at"]}
+
+
+_NOT_PLANNED = {"level_l": None, "next": None, "error": ""}

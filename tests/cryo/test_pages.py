@@ -122,3 +122,41 @@ def test_worst_case_oxygen_in_a_larger_room(client, member, manager, logged):
     client.force_login(member)
     # REFERENCES.md §10: 20.9 × (200 − 100 × 0.7368)/200 = 13.2 % (LHe expands 736.8× at 15 °C).
     assert "13.2 % O₂" in client.get("/cryostats/").content.decode()
+
+
+def test_the_dashboard_reuses_its_plan_until_a_refill_or_a_cryostat_changes(
+    member, manager, logged, now, settings
+):
+    from datetime import timedelta
+
+    from django.core.cache import cache
+
+    from labbook.cryo.queries import dashboard_panel
+    from labbook.instruments.models import Reading
+
+    settings.LABBOOK_DASHBOARD_PLAN_SECONDS = 60
+    cache.clear()
+    first = dashboard_panel(now)
+    level = first["rows"][0]["level_l"]
+    assert first["planned_at"] == now and level is not None
+    # A reading that moves the bath: not seen while the plan is reused (at most a minute).
+    Reading.objects.create(
+        channel=logged.level_channel, t=now + timedelta(milliseconds=1), value=level / 2
+    )
+    reused = dashboard_panel(now + timedelta(seconds=20))
+    assert reused["planned_at"] == now and reused["rows"][0]["level_l"] == level
+    # A logged refill is seen at once: a new plan, which also reads the new level.
+    actions.record_refill(logged, at=now - timedelta(minutes=5), taken_l=4.0, actor=member)
+    after_refill = dashboard_panel(now + timedelta(seconds=30))
+    assert after_refill["planned_at"] == now + timedelta(seconds=30)
+    assert after_refill["rows"][0]["level_l"] != level
+    # So is a changed cryostat.
+    actions.update_cryostat(logged, name="Bath of the LT head", actor=manager)
+    renamed = dashboard_panel(now + timedelta(seconds=40))
+    assert renamed["planned_at"] == now + timedelta(seconds=40)
+    assert renamed["rows"][0]["cryostat"].name == "Bath of the LT head"
+    # 0 makes a plan on every load.
+    settings.LABBOOK_DASHBOARD_PLAN_SECONDS = 0
+    assert dashboard_panel(now + timedelta(seconds=50))["planned_at"] == now + timedelta(
+        seconds=50
+    )

@@ -19,8 +19,10 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 import shutil
 import tempfile
+import unicodedata
 from collections.abc import Callable, Iterator
 from pathlib import Path, PurePosixPath
 from typing import Any
@@ -421,7 +423,36 @@ def write_crate_dir(found: list[Provenance], target: Path, **labels: str) -> Pat
     return target
 
 
-def crate_filename(found: list[Provenance]) -> str:
+#: The longest stem a crate's title gives its download, before ``.crate.zip``.
+TITLE_STEM_MAX = 80
+# Names Windows refuses for a file whatever its extension ("CON.crate.zip" cannot be saved).
+_RESERVED_STEMS = frozenset(
+    {"CON", "PRN", "AUX", "NUL"} | {f"{port}{n}" for port in ("COM", "LPT") for n in range(1, 10)}
+)
+
+
+def title_stem(title: str) -> str:
+    """The part of a crate's title that is safe as a file name on any system: ASCII letters,
+    digits, '-', '_' and '.', other runs (spaces, slashes, quotes, markup, control characters)
+    as one '-', accents dropped ("Ångström" → "Angstrom"), no leading or trailing dots or
+    dashes, no "..", at most ``TITLE_STEM_MAX`` characters; "" when nothing usable is left."""
+    # NFKD splits "Å" into "A" and a combining ring, which the ASCII encoding then drops.
+    ascii_text = unicodedata.normalize("NFKD", title).encode("ascii", "ignore").decode()
+    stem = re.sub(r"[^A-Za-z0-9._-]+", "-", ascii_text)
+    stem = re.sub(r"\.{2,}", ".", stem)
+    stem = re.sub(r"-{2,}", "-", stem).strip(".-_")
+    stem = stem[:TITLE_STEM_MAX].rstrip(".-_")
+    if stem.split(".", 1)[0].upper() in _RESERVED_STEMS:
+        return ""
+    return stem
+
+
+def crate_filename(found: list[Provenance], title: str = "") -> str:
+    """The name the crate downloads under: from its title when the title leaves a safe
+    name, else from its one dataset's name, else from the number of datasets."""
+    stem = title_stem(title or "")
+    if stem:
+        return f"{stem}.crate.zip"
     if len(found) == 1:
         stem = PurePosixPath(_safe_name(found[0].file.original_name)).stem
         return f"{stem}-{found[0].file.pk}.crate.zip"

@@ -87,6 +87,12 @@ def request_crate(ids: list[Any], *, name: str = "", description: str = "", acto
         problems.append(
             f"the description has {len(description)} characters; at most {DESCRIPTION_MAX} fit"
         )
+    # PostgreSQL's jsonb cannot hold U+0000; refused here, it is named instead of a 500.
+    for field, text in (("title", name), ("description", description)):
+        if "\x00" in text:
+            problems.append(
+                f"the {field} has a NUL character (U+0000), which cannot be stored: remove it"
+            )
     if problems:
         raise CrateRequestError(problems)
     with transaction.atomic():
@@ -156,5 +162,5 @@ def build_crate_job(job: Job) -> dict:
         "storage_name": saved,
         "size_bytes": size,
         "sha256": digest.hexdigest(),
-        "filename": crate.crate_filename(found),
+        "filename": crate.crate_filename(found, title=labels["name"]),
     }

@@ -6,6 +6,8 @@ from __future__ import annotations
 
 import io
 import re
+from datetime import UTC, datetime, timedelta
+from html.parser import HTMLParser
 
 import numpy as np
 import pytest
@@ -139,7 +141,7 @@ def test_a_dataset_without_traces_has_no_plot(member, ingest):
 
 def test_the_page_shows_the_plot_and_the_normalised_conductance(member, spectrum):
     page = logged_in(member).get(f"/datasets/{spectrum.pk}/").content.decode()
-    img = re.search(rf'<img src="/datasets/{spectrum.pk}/spectrum\.png"[^>]*>', page)
+    img = re.search(rf'<img src="/datasets/{spectrum.pk}/spectrum\.png\?v=[^"]+"[^>]*>', page)
     assert img, "no spectrum plot on the page"
     assert 'width="640"' in img[0] and 'height="440"' in img[0]
     assert "normalised conductance (dI/dV)/(I/V)" in img[0] and "alt=" in img[0]
@@ -167,6 +169,84 @@ def test_a_spectrum_without_current_shows_why_there_is_no_ratio(member, ingest):
     # Its lock-in trace is still drawn, in its own unit.
     response = client.get(f"/datasets/{record.pk}/spectrum.png")
     assert response.status_code == 200 and response.content[:8] == PNG_SIGNATURE
+
+
+class _PlotImg(HTMLParser):
+    """The spectrum plot's <img> attributes, entities decoded, as a browser reads them."""
+
+    def __init__(self):
+        super().__init__()
+        self.attrs: dict[str, str] = {}
+
+    def handle_starttag(self, tag, attrs):
+        found = dict(attrs)
+        if tag == "img" and "/spectrum.png" in (found.get("src") or ""):
+            self.attrs = found
+
+
+def plot_img(client, record) -> dict[str, str]:
+    parser = _PlotImg()
+    parser.feed(client.get(f"/datasets/{record.pk}/").content.decode())
+    assert parser.attrs, "no spectrum plot on the page"
+    return parser.attrs
+
+
+def expected_version(processed_at: datetime) -> str:
+    # Microseconds since the Unix epoch, by integer datetime arithmetic (no float, no
+    # formatting): what the page's version is made of, after the drawing's style version.
+    micro = (processed_at - datetime(1970, 1, 1, tzinfo=UTC)) // timedelta(microseconds=1)
+    return f"{spectrum_plots.STYLE_VERSION}-{micro}"
+
+
+def directives(response) -> set[str]:
+    return {part.strip() for part in response["Cache-Control"].split(",")}
+
+
+def test_the_page_links_a_plot_versioned_by_when_it_was_processed(member, spectrum):
+    client = logged_in(member)
+    raw = client.get(f"/datasets/{spectrum.pk}/").content.decode()
+    img = plot_img(client, spectrum)
+    src = f"/datasets/{spectrum.pk}/spectrum.png?v={expected_version(spectrum.processed_at)}"
+    assert img["src"] == src
+    # Two query parameters in an HTML attribute: the '&' written as "&amp;" (HTML's named
+    # character references), which the parser reads back as '&'.
+    assert img["srcset"] == f"{src} 1x, {src}&scale=2 2x"
+    assert f"{src}&amp;scale=2 2x" in raw
+
+    # Processed again (a new processed_at with the new stats): the page links a new URL.
+    later = spectrum.processed_at + timedelta(seconds=90, microseconds=1)
+    type(spectrum).objects.filter(pk=spectrum.pk).update(processed_at=later)
+    again = plot_img(client, spectrum)
+    assert again["src"] == f"/datasets/{spectrum.pk}/spectrum.png?v={expected_version(later)}"
+    assert again["src"] != img["src"]
+
+
+def test_the_current_version_is_kept_long_any_other_url_an_hour(member, spectrum):
+    client = logged_in(member)
+    src = plot_img(client, spectrum)["src"]
+    versioned = client.get(src)
+    assert versioned.status_code == 200 and versioned["Content-Type"] == "image/png"
+    # RFC 8246: "immutable" says the URL's content will not change; a year's max-age.
+    assert directives(versioned) == {"private", "max-age=31536000", "immutable"}
+    assert png_size(versioned.content) == (spectrum_plots.WIDTH_PX, spectrum_plots.HEIGHT_PX)
+    double = client.get(f"{src}&scale=2")
+    assert double.status_code == 200 and "immutable" in directives(double)
+    assert png_size(double.content) == (2 * spectrum_plots.WIDTH_PX, 2 * spectrum_plots.HEIGHT_PX)
+
+    unversioned = client.get(f"/datasets/{spectrum.pk}/spectrum.png")
+    assert unversioned.status_code == 200 and unversioned["Content-Type"] == "image/png"
+    assert directives(unversioned) == {"private", "max-age=3600"}
+    assert unversioned.content == versioned.content
+
+    # After processing again, the old page's URL still answers, but only for an hour: it
+    # now shows other traces than when it was linked.
+    later = spectrum.processed_at + timedelta(seconds=90)
+    type(spectrum).objects.filter(pk=spectrum.pk).update(processed_at=later)
+    stale = client.get(src)
+    assert stale.status_code == 200 and stale["Content-Type"] == "image/png"
+    assert directives(stale) == {"private", "max-age=3600"}
+    wrong = client.get(f"/datasets/{spectrum.pk}/spectrum.png?v=nonsense")
+    assert wrong.status_code == 200 and directives(wrong) == {"private", "max-age=3600"}
 
 
 def test_si_prefix_of_the_axes():

@@ -122,7 +122,7 @@ def test_a_crate_of_two_ticked_datasets_is_made_followed_and_downloaded(
     with page.expect_download() as info:
         link.click()
     download = info.value
-    assert download.suggested_filename == "datasets-2.crate.zip"
+    assert download.suggested_filename == "Figure-4-three-terraces.crate.zip"
     body = download.path().read_bytes()
     assert hashlib.sha256(body).hexdigest() == job.result["sha256"]
     with zipfile.ZipFile(io.BytesIO(body)) as archive:

@@ -8,8 +8,11 @@ from __future__ import annotations
 import hashlib
 import io
 import json
+import ntpath
+import posixpath
 import re
 import zipfile
+from email.message import Message
 
 import pytest
 from django.core.files.storage import default_storage
@@ -104,7 +107,9 @@ def test_the_job_writes_the_datasets_bytes_and_metadata_into_storage(
     assert result["size_bytes"] == len(body) == default_storage.size(result["storage_name"])
     assert result["sha256"] == hashlib.sha256(body).hexdigest()
     assert result["datasets"] == result["done"] == 2
-    assert result["filename"] == "datasets-2.crate.zip"
+    # The title gives the download's name: "Figure 2 <b>" keeps its letters and digits, the
+    # space and the markup each become one '-'.
+    assert result["filename"] == "Figure-2-b.crate.zip"
 
     members = _members(body)
     assert "ro-crate-metadata.json" in members
@@ -146,6 +151,8 @@ def test_running_the_job_again_rewrites_the_same_zip(history, make_crate):
         (["x7"], {}, "“x7” is not a dataset id"),
         (["{clean}", "999999"], {}, "no dataset 999999: it is not in this labbook"),
         (["{clean}"], {"name": "F" * 301}, "the title has 301 characters; at most 300 fit"),
+        (["{clean}"], {"name": "F\x00"}, "the title has a NUL character (U+0000)"),
+        (["{clean}"], {"description": "\x00"}, "the description has a NUL character (U+0000)"),
     ],
 )
 def test_a_bad_request_names_the_problem_and_records_no_job(history, make_crate, ids, fields, says):
@@ -203,8 +210,7 @@ def test_the_crate_page_polls_until_done_then_offers_the_download(
     download = client.get(f"/provenance/crates/{job.pk}/download/")
     assert download.status_code == 200
     assert download["Content-Type"] == "application/zip"
-    name = f"nacl-{record.pk}.crate.zip"
-    assert download["Content-Disposition"] == f'attachment; filename="{name}"'
+    assert download["Content-Disposition"] == 'attachment; filename="Figure-3.crate.zip"'
     body = b"".join(download.streaming_content)
     assert body == _stored(Job.objects.get(pk=job.pk))
     members = _members(body)
@@ -307,3 +313,90 @@ def test_the_dataset_page_links_to_a_crate_with_other_datasets(history, member):
     page = client.get(link[1].replace("&amp;", "&"))
     assert page.status_code == 200
     assert re.search(rf'<input type="checkbox"[^>]*value="{record.pk}" checked>', html(page))
+
+
+def _disposition_filename(header: str) -> str | None:
+    """The file name a mail/HTTP header parser (the standard library's, RFC 2183/6266
+    syntax) reads from a Content-Disposition, independently of how Django wrote it."""
+    message = Message()
+    message["Content-Disposition"] = header
+    return message.get_filename()
+
+
+def _download(member, job: Job):
+    response = as_client(member).get(f"/provenance/crates/{job.pk}/download/")
+    assert response.status_code == 200
+    b"".join(response.streaming_content)
+    return response
+
+
+def test_a_titled_crate_downloads_under_its_title_with_accents_dropped(history, member, make_crate):
+    make_crate([history.files["nacl"].pk, history.files["co"].pk], name="Ångström steps on Cu(111)")
+    job = Job.objects.get(kind=CRATE_JOB)
+    # Unicode's canonical decomposition: Å is A + U+030A (ring above), ö is o + U+0308
+    # (diaeresis); without the combining marks the letters are plain A and o.
+    name = "Angstrom-steps-on-Cu-111.crate.zip"
+    assert job.result["filename"] == name
+    download = _download(member, job)
+    assert download["Content-Disposition"] == f'attachment; filename="{name}"'
+    assert _disposition_filename(download["Content-Disposition"]) == name
+    part = html(as_client(member).get(f"/provenance/crates/{job.pk}/progress/"))
+    assert f'download="{name}"' in part
+
+
+@pytest.mark.parametrize("title", ["", "   ", "日本語の結晶", "//..//", "CON", "<>"])
+def test_a_title_leaving_no_usable_name_falls_back_to_the_dataset_name(
+    history, member, make_crate, title
+):
+    record = history.files["nacl"]
+    make_crate([record.pk], name=title)
+    job = Job.objects.get(kind=CRATE_JOB)
+    assert job.state == Job.State.DONE, job.error
+    name = f"nacl-{record.pk}.crate.zip"
+    assert job.result["filename"] == name
+    assert _disposition_filename(_download(member, job)["Content-Disposition"]) == name
+
+
+def test_a_title_leaving_no_usable_name_falls_back_to_the_count(history, make_crate):
+    make_crate([history.files["nacl"].pk, history.files["co"].pk], name="«»")
+    assert Job.objects.get(kind=CRATE_JOB).result["filename"] == "datasets-2.crate.zip"
+
+
+SAFE = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]*")
+
+
+@pytest.mark.parametrize(
+    ("title", "stem"),
+    [
+        ("Figure 3 <b>x</b>", "Figure-3-b-x-b"),
+        ("../../etc/passwd", "etc-passwd"),
+        ("..\\..\\Windows\\win.ini", "Windows-win.ini"),
+        ('a"; filename="evil.exe', "a-filename-evil.exe"),
+        ("x\r\nSet-Cookie: s=1", "x-Set-Cookie-s-1"),
+        ("\x1b[2J\x07bell\ttab\x7fdel", "2J-bell-tab-del"),
+        ("...hidden..name...", "hidden.name"),
+        ("a" * 79 + " " + "b" * 50, "a" * 79),
+    ],
+)
+def test_a_hostile_title_gives_a_harmless_name(title, stem):
+    name = crate.crate_filename([], title=title)
+    assert name == f"{stem}.crate.zip"
+    # Whatever was typed: one plain name on POSIX and Windows, no "..", no leading dot,
+    # nothing but ASCII letters, digits, '-', '_' and '.', and a stem of at most 80.
+    assert posixpath.basename(name) == ntpath.basename(name) == name
+    assert SAFE.fullmatch(name) and ".." not in name
+    assert len(name.removesuffix(".crate.zip")) <= 80
+
+
+def test_a_hostile_title_downloads_under_a_harmless_name(history, member, make_crate):
+    make_crate(
+        [history.files["co"].pk],
+        name='../..\\"quoted"\x1b[31m\r\n; filename=evil.sh',
+    )
+    job = Job.objects.get(kind=CRATE_JOB)
+    assert job.state == Job.State.DONE, job.error
+    name = "quoted-31m-filename-evil.sh.crate.zip"
+    assert job.result["filename"] == name
+    header = _download(member, job)["Content-Disposition"]
+    assert header == f'attachment; filename="{name}"'
+    assert _disposition_filename(header) == name

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
+from functools import cache
 from types import SimpleNamespace
 
 from django.contrib.auth import get_user_model
@@ -74,12 +75,14 @@ def _admit(user) -> None:
         raise HttpError(403, "this account is not a member of the lab")
 
 
-def _token_fields() -> list[str]:
-    return [f.attname for f in ApiToken._meta.concrete_fields]
+@cache
+def _token_fields() -> tuple[str, ...]:
+    return tuple(f.attname for f in ApiToken._meta.concrete_fields)
 
 
-def _user_fields() -> list[str]:
-    return [f.attname for f in get_user_model()._meta.concrete_fields]
+@cache
+def _user_fields() -> tuple[str, ...]:
+    return tuple(f.attname for f in get_user_model()._meta.concrete_fields)
 
 
 def _active_token_query(token_hash: str, now: datetime):

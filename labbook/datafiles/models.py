@@ -12,6 +12,19 @@ from labbook.core.models import LabRecord
 
 #: Width of a bias band (V) of the banded search index: a 0.1 V range touches one or two.
 BIAS_BAND_V = 0.1
+#: The columns a search filters on, carried by its newest-first indexes so that a walk along
+#: one tests each entry without reading the row (an index-only scan).
+SEARCH_FILTER_COLUMNS = (
+    "bias_v",
+    "coverage_ml",
+    "setpoint_a",
+    "retired_at",
+    "kind",
+    "status",
+    "instrument_id",
+    "sample_id",
+    "tip_id",
+)
 
 
 class AcquiredFile(LabRecord):
@@ -128,34 +141,14 @@ class AcquiredFile(LabRecord):
             # each row to test it took 10-15 ms (1,000,000 datasets, bench "files").
             models.Index(
                 fields=["-acquired_at", "-id"],
-                include=[
-                    "bias_v",
-                    "coverage_ml",
-                    "setpoint_a",
-                    "retired_at",
-                    "kind",
-                    "status",
-                    "instrument_id",
-                    "sample_id",
-                    "tip_id",
-                ],
+                include=SEARCH_FILTER_COLUMNS,
                 name="file_newest_covering",
             ),
             # The same, one run per bias band: a bias-range search merges a few runs newest
             # first and skips ~10–20× fewer entries than on file_newest_covering.
             models.Index(
                 fields=["bias_band", "-acquired_at", "-id"],
-                include=[
-                    "bias_v",
-                    "coverage_ml",
-                    "setpoint_a",
-                    "retired_at",
-                    "kind",
-                    "status",
-                    "instrument_id",
-                    "sample_id",
-                    "tip_id",
-                ],
+                include=SEARCH_FILTER_COLUMNS,
                 name="file_bias_band_newest",
             ),
             models.Index(fields=["setpoint_a"], name="file_setpoint"),

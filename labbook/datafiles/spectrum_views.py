@@ -10,8 +10,10 @@ from __future__ import annotations
 
 from django.http import Http404, HttpRequest, HttpResponse, HttpResponseBadRequest
 from django.shortcuts import get_object_or_404
+from django.urls import reverse
 from django.utils import dateformat
 from django.utils.cache import patch_cache_control
+from django.utils.http import urlencode
 from django.views.decorators.http import require_GET
 
 from labbook.accounts.permissions import lab_member_required
@@ -33,6 +35,14 @@ def plot_version(record: AcquiredFile) -> str:
     if record.processed_at is None:
         return ""
     return f"{spectrum_plots.STYLE_VERSION}-{dateformat.format(record.processed_at, 'Uu')}"
+
+
+def plot_url(record: AcquiredFile) -> str:
+    """The plot's URL as the dataset page links it: with :func:`plot_version`, so a dataset
+    processed again shows its new plot at once."""
+    url = reverse("datafiles:spectrum_plot", args=[record.pk])
+    version = plot_version(record)
+    return f"{url}?{urlencode({'v': version})}" if version else url
 
 
 @lab_member_required

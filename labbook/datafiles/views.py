@@ -30,6 +30,7 @@ from labbook.accounts.permissions import lab_member_required
 from labbook.datafiles import actions, queries
 from labbook.datafiles.forms import SORTS, CorrectionForm, SearchForm, UploadForm
 from labbook.datafiles.models import AcquiredFile
+from labbook.datafiles.spectrum_views import plot_url
 from labbook.datafiles.storage import UploadTooLarge, safe_display_name
 from labbook.instruments import queries as instrument_queries
 from labbook.provenance import views as provenance_views
@@ -421,18 +422,8 @@ def dataset_context(record: AcquiredFile, form: CorrectionForm) -> dict[str, Any
         "page_instrument": record.instrument,
         "note_tip": record.tip,
         "provenance": provenance_views.panel_context(record),
-        "spectrum_url": spectrum_plot_url(record),
+        "spectrum_url": plot_url(record),
     }
-
-
-def spectrum_plot_url(record: AcquiredFile) -> str:
-    """The plot's URL with the version of its traces (spectrum_views.plot_version), so a
-    dataset processed again shows its new plot at once."""
-    from labbook.datafiles.spectrum_views import plot_version
-
-    url = reverse("datafiles:spectrum_plot", args=[record.pk])
-    version = plot_version(record)
-    return f"{url}?{urlencode({'v': version})}" if version else url
 
 
 # --- presenters -------------------------------------------------------------------------------

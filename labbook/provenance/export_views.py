@@ -30,6 +30,8 @@ from labbook.provenance.export_jobs import (
 )
 from labbook.web.polling import poll_every, polls_so_far
 
+_ID_SEPARATORS = re.compile(r"[\s,;]+")
+
 
 def _see_other(url: str) -> HttpResponse:
     """303: after a POST the browser GETs the crate's page (a reload never posts twice)."""
@@ -111,11 +113,10 @@ def crate_new(request: HttpRequest) -> HttpResponse:
     every problem named; nothing typed or ticked is dropped."""
     source = request.POST if request.method == "POST" else request.GET
     more = str(source.get("more_ids", ""))
-    # Ticked boxes send one id each; a link may send several at once (?ids=12,15).
-    ids = [part for value in source.getlist("ids") for part in re.split(r"[\s,;]+", str(value))]
+    # Ticked boxes send one id each; a link may send several at once (?ids=12,15); ids typed
+    # on the crate page ("12, 15 17") are for datasets not on the search page at hand.
+    ids = [i for value in [*source.getlist("ids"), more] for i in _ID_SEPARATORS.split(str(value))]
     ids = [i for i in ids if i]
-    # Ids typed on the crate page ("12, 15 17"), for datasets not on the search page at hand.
-    ids += [i for i in re.split(r"[\s,;]+", more) if i]
     name = str(source.get("name", ""))
     description = str(source.get("description", ""))
     back = _back_to(request, source.get("next"))

@@ -117,7 +117,7 @@ def _lerp(below: float, above: float, weight: float) -> float:
     return below + difference * weight
 
 
-#: Size of the strided sample that guesses the guards of :func:`_guarded_statistics`:
+#: Size of the pseudo-random sample that guesses the guards of :func:`_guarded_statistics`:
 #: its quantiles land within a few tenths of a percent of the image's, and it partitions
 #: in microseconds.
 _GUARD_SAMPLE = 8192
@@ -165,7 +165,7 @@ def _guarded_statistics(
     ``finite`` non-NaN ``values``, without reordering ``values``. None when the guess below
     misses or does not pay; the caller then partitions everything.
 
-    A strided sample guesses guard values a little beyond the wanted ranks; one comparison
+    A pseudo-random sample guesses guard values a little beyond the wanted ranks; one comparison
     over the array extracts the values at or beyond each guard (a percent or two of them
     for the default clip) and only those are partitioned. The answer does not depend on the
     guess: when the extract below a guard holds at least the k + 1 smallest ranks, every

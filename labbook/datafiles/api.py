@@ -92,12 +92,16 @@ class FilePage(Schema):
 
 
 class FileFilters(Schema):
-    bias_min: float | None = Field(None, description="V")
-    bias_max: float | None = Field(None, description="V")
-    setpoint_min: float | None = Field(None, description="A")
-    setpoint_max: float | None = Field(None, description="A")
-    coverage_min: float | None = Field(None, description="ML (of adsorbate if given)")
-    coverage_max: float | None = Field(None, description="ML (of adsorbate if given)")
+    bias_min: float | None = Field(None, description="V", allow_inf_nan=False)
+    bias_max: float | None = Field(None, description="V", allow_inf_nan=False)
+    setpoint_min: float | None = Field(None, description="A", allow_inf_nan=False)
+    setpoint_max: float | None = Field(None, description="A", allow_inf_nan=False)
+    coverage_min: float | None = Field(
+        None, description="ML (of adsorbate if given)", allow_inf_nan=False
+    )
+    coverage_max: float | None = Field(
+        None, description="ML (of adsorbate if given)", allow_inf_nan=False
+    )
     adsorbate: str | None = None
     sample: int | None = None
     tip: int | None = None
@@ -191,7 +195,13 @@ def search_files(request, filters: Query[FileFilters]):
     """Datasets by the conditions they were taken under, newest first. ``next_offset`` is
     null on the last page (no total count: counting a million rows would cost more than the
     page)."""
-    criteria = queries.FileSearch(**filters.dict(exclude={"limit", "offset"}))
+    chosen = filters.dict(exclude={"limit", "offset"})
+    inverted = queries.inverted_ranges(chosen)
+    if inverted:
+        raise HttpError(
+            422, "; ".join(f"{high} is below {low}: swap them" for low, high in inverted)
+        )
+    criteria = queries.FileSearch(**chosen)
     # Plain rows, rendered as they are: model instances and the schema's validation of 50
     # of them took twice as long as the search itself. The page never shows the lineage
     # snapshot, the raw header or the metadata as sent, so they are not fetched.

@@ -17,6 +17,7 @@ from django.core.exceptions import ValidationError
 from django.utils import timezone
 
 from labbook.datafiles.models import AcquiredFile, FileCoverage
+from labbook.datafiles.queries import inverted_ranges
 from labbook.instruments.queries import instruments_for
 from labbook.samples import queries as sample_queries
 from labbook.samples.forms import LabDateTimeField, lab_zone
@@ -210,15 +211,8 @@ class SearchForm(forms.Form):
 
     def clean(self) -> dict[str, Any]:
         data = super().clean()
-        for low, high in (
-            ("bias_min", "bias_max"),
-            ("setpoint_min", "setpoint_max"),
-            ("coverage_min", "coverage_max"),
-            ("since", "until"),
-        ):
-            a, b = data.get(low), data.get(high)
-            if a is not None and b is not None and a > b:
-                self.add_error(high, "is below the lower bound; swap them")
+        for _, high in inverted_ranges(data):
+            self.add_error(high, "is below the lower bound; swap them")
         return data
 
     def criteria(self) -> dict[str, Any]:

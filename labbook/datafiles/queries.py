@@ -4,8 +4,10 @@ and the datasets of a tip, a sample or an instrument."""
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import datetime
+from typing import Any
 
 from django.db.models import Exists, OuterRef, Q, QuerySet
 from django.db.models.expressions import RawSQL
@@ -37,6 +39,27 @@ class FileSearch:
     since: datetime | None = None
     until: datetime | None = None
     q: str | None = None
+
+
+#: The (low, high) pairs of a search: each an inclusive range, the low end first.
+RANGES = (
+    ("bias_min", "bias_max"),
+    ("setpoint_min", "setpoint_max"),
+    ("coverage_min", "coverage_max"),
+    ("since", "until"),
+)
+
+
+def inverted_ranges(values: Mapping[str, Any]) -> list[tuple[str, str]]:
+    """The (low, high) pairs of :data:`RANGES` given the wrong way round: such a search finds
+    nothing, which reads as "no such data" when it means "swap them"."""
+    return [
+        (low, high)
+        for low, high in RANGES
+        if values.get(low) is not None
+        and values.get(high) is not None
+        and values[low] > values[high]
+    ]
 
 
 def files() -> QuerySet[AcquiredFile]:

@@ -58,9 +58,10 @@ def ingest(
     require_member(actor)
     given = _check_metadata(metadata)
     stored = store_stream(stream, keep_oversized=keep_oversized)
-    # A new file is the usual case: asking only for an id is a narrow query; the whole row
-    # (a wide SELECT to build, with its JSON to decode) is read only for bytes seen before.
-    if AcquiredFile.objects.filter(sha256=stored.sha256).exists():
+    # Bytes new to the storage cannot have a dataset yet (and if one had lost its file, the
+    # INSERT below meets its SHA-256 and answers with it): only bytes seen before are looked
+    # up, and then only for an id before the whole row (a wide SELECT with JSON to decode).
+    if stored.already_stored and AcquiredFile.objects.filter(sha256=stored.sha256).exists():
         return Ingested(AcquiredFile.objects.get(sha256=stored.sha256), created=False)
     record = AcquiredFile(
         sha256=stored.sha256,

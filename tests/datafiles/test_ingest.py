@@ -82,6 +82,23 @@ def test_the_same_bytes_twice_are_one_dataset(upload):
     assert AcquiredFile.objects.count() == 1
 
 
+def test_bytes_whose_stored_file_was_lost_come_back_to_their_dataset(upload):
+    # New bytes skip the lookup by hash; a dataset whose file went missing is still found, by
+    # the unique SHA-256 the INSERT meets, and the upload puts its bytes back.
+    from django.core.files.storage import default_storage
+
+    data = npy_bytes(grating(32))
+    first = upload(data, "a.npy", {"kind": "topograph"})
+    record = AcquiredFile.objects.get(pk=first.json()["id"])
+    default_storage.delete(record.storage_name)
+    again = upload(data, "again.npy")
+    assert (first.status_code, again.status_code) == (201, 200)
+    assert again.json()["id"] == record.pk
+    assert AcquiredFile.objects.count() == 1
+    with default_storage.open(record.storage_name, "rb") as handle:
+        assert handle.read() == data
+
+
 @pytest.mark.parametrize(
     ("data", "name", "expected"),
     [

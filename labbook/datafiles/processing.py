@@ -363,6 +363,8 @@ def analyse(parsed: ParsedFile, given: dict[str, Any]) -> Analysis:
         )
         result.stats = _flat_image_stats(full)
         result.stats["channel"] = name
+        # The unit of every value above (a Δf image is in Hz, not the metres of a topograph).
+        result.stats["unit"] = parsed.units.get(name, "")
         result.thumbnail = thumbnails.thumbnail_png(z, dx=dx, dy=dy)
         metadata.setdefault("channel_name", name)
     elif kind == "spectrum":

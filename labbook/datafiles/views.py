@@ -792,8 +792,12 @@ def metadata_groups(record: AcquiredFile) -> list[Group]:
 
 
 def _data_unit(record: AcquiredFile) -> str:
-    """The unit of an image's values: the stats carry none, so it follows from the kind
-    (a topograph is heights in m, a current image is in A; otherwise it is not known)."""
+    """The unit of an image's values: its channel's, as the reader found it (stored with the
+    statistics); for datasets measured before that was kept, it follows from the kind (a
+    topograph is heights in m, a current image is in A; otherwise it is not known)."""
+    unit = (record.stats or {}).get("unit")
+    if isinstance(unit, str) and unit:
+        return unit
     return {"topograph": "m", "current": "A"}.get(record.kind, "")
 
 

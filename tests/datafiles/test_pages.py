@@ -502,6 +502,22 @@ def test_without_a_scan_size_the_period_is_given_in_pixels(member, ingest):
     assert "8\u00a0px" in stats and "no scan size" in stats and "nm" not in stats
 
 
+def test_an_image_that_is_not_heights_shows_its_statistics_in_its_own_unit(member, ingest):
+    # A Δf image (kind "other"): a ±2 Hz grating, in the unit the upload gave its channel.
+    record = ingest(
+        npy_bytes(grating(64, amplitude_m=2.0)),
+        "df.npy",
+        member,
+        {"unit": "Hz", "channel_name": "frequency_shift", "scan_size_m": ["5 nm", "5 nm"]},
+    )
+    assert (record.status, record.kind, record.stats["unit"]) == ("ready", "other", "Hz")
+    stats = section(as_client(member).get(f"/datasets/{record.pk}/"), "statistics")
+    # Rq of A·cos is A/√2 = 1.41 Hz (the grating is even about the centre: levelling keeps it).
+    assert format_quantity(record.stats["rq"], "Hz") == "1.41\u00a0Hz"
+    assert "1.41\u00a0Hz" in stats and format_quantity(record.stats["max"], "Hz") in stats
+    assert "pm" not in stats and "nm" in stats  # only the period is a length
+
+
 def test_an_unreadable_file_shows_its_error_and_keeps_its_bytes(member, ingest):
     record = ingest(b"\x93NUMPY\x01\x00v\x00{'descr'", "cut.npy", member)
     text = html(as_client(member).get(f"/datasets/{record.pk}/"))

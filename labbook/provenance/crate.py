@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import os
 import re
 import shutil
 import tempfile
@@ -44,14 +45,18 @@ RO_CRATE_VERSION = "1.1"
 
 
 def _local_path(storage_name: str, scratch: Path) -> str:
-    """A path on disk holding the stored bytes: the storage's own where it has one."""
+    """A path on disk holding the stored bytes: the storage's own where it has one (a
+    backend may name a path that holds nothing: Django's in-memory storage does)."""
     try:
-        return default_storage.path(storage_name)
+        own = default_storage.path(storage_name)
     except NotImplementedError:
-        target = scratch / hashlib.sha256(storage_name.encode()).hexdigest()
-        with default_storage.open(storage_name, "rb") as source, open(target, "wb") as out:
-            shutil.copyfileobj(source, out, CHUNK)
-        return str(target)
+        own = None
+    if own is not None and os.path.isfile(own):
+        return own
+    target = scratch / hashlib.sha256(storage_name.encode()).hexdigest()
+    with default_storage.open(storage_name, "rb") as source, open(target, "wb") as out:
+        shutil.copyfileobj(source, out, CHUNK)
+    return str(target)
 
 
 def _text_file(

@@ -50,6 +50,7 @@ def files() -> list[Figure]:
     from labbook.datafiles.models import AcquiredFile
     from labbook.datafiles.storage import hash_stream
     from labbook.science.thumbnails import thumbnail_png
+
     figures: list[Figure] = []
     member, _ = get_user_model().objects.get_or_create(username="bench-files")
     set_role(member, "manager")
@@ -242,6 +243,7 @@ def _straight_line_ms(blobs: list[bytes], media: str) -> float:
     write the new bytes to a file, read and hash them, the statistics bundle (with the FFT
     period) and the thumbnail, the thumbnail written, one INSERT committed. No ORM, no
     history row, no task: what is left of the ingest's time beyond this is those."""
+    from labbook.datafiles.tasks import _jsonable  # what the ingest stores the stats with
     from labbook.science.images import image_statistics
     from labbook.science.thumbnails import thumbnail_png
 
@@ -266,16 +268,12 @@ def _straight_line_ms(blobs: list[bytes], media: str) -> float:
         with connection.cursor() as cursor:
             cursor.execute(
                 "INSERT INTO bench_straight_line VALUES (%s, %s)",
-                [sha256, json.dumps(found, default=_plain_json)],
+                [sha256, json.dumps(_jsonable(found))],
             )
         spent.append((time.perf_counter() - started) * 1000)
     with connection.cursor() as cursor:
         cursor.execute("DROP TABLE bench_straight_line")
     return statistics.median(spent[5:])
-
-
-def _plain_json(value):
-    return value.tolist() if hasattr(value, "tolist") else str(value)
 
 
 def _fill_datasets(count: int) -> None:
